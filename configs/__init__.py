@@ -1,0 +1,1 @@
+"""mnemode's Hydra config tree (shipped inside the package as ``mnemode.configs``)."""

@@ -1,0 +1,5 @@
+"""Ways to fit a closure: regression on targets, trajectory fitting, ridge readouts."""
+
+from .context import FitContext
+
+__all__ = ["FitContext"]

@@ -1,0 +1,191 @@
+"""Physics plus closure: one augmented vector field, one corrected flow map, and their unrolls.
+
+Continuous hybrid (state ``s = [x, r]``, ``r`` the closure's hidden memory)::
+
+    dx/dt = f0(x, u) + m(x, r, u)
+    dr/dt = g(x, r, u)
+
+With no physics (``physics=None``) it is the data-only model; with no closure the
+physics-only model. Discrete hybrid on the observation grid (``Δt``)::
+
+    x_{n+1} = Ψ0(x_n) + Δt · m(x_n, r_n),     r_{n+1} = cell(x_n, r_n)
+
+where Ψ0 integrates f0 accurately over one ``Δt``.
+
+:func:`simulate` free-runs either kind from ``(x0, r0)``; :func:`warm_up` drives the
+hidden state with observed ``x`` (the observations replace the model's ``x``) to
+give the ``r0`` a forecast starts from. Trajectories are ``(time, batch, dim)``.
+"""
+
+from __future__ import annotations
+
+from typing import Callable
+
+import torch
+from torch import nn
+
+from .closures.base import Closure
+from .solvers import FlowMap, Solver
+
+__all__ = ["HybridField", "HybridFlowMap", "simulate", "warm_up", "Forcing"]
+
+
+class Forcing:
+    """Piecewise-linear forcing ``u(t)`` from samples ``values (T, B, U)`` at regular times."""
+
+    def __init__(self, t0: float, dt: float, values: torch.Tensor):
+        self.t0, self.dt, self.values = float(t0), float(dt), values
+
+    def __call__(self, t) -> torch.Tensor:
+        s = (torch.as_tensor(t, dtype=self.values.dtype) - self.t0) / self.dt
+        s = s.clamp(0, self.values.shape[0] - 1)
+        i = torch.clamp(torch.floor(s).long(), max=self.values.shape[0] - 2)
+        w = s - i
+        return self.values[i] * (1 - w) + self.values[i + 1] * w
+
+
+class HybridField(nn.Module):
+    """Augmented vector field ``f(t, [x, r])`` of a continuous hybrid model.
+
+    Args:
+        physics: nominal field ``f0(t, x[, u])`` or ``None`` (data-only).
+        closure: a continuous :class:`Closure` or ``None`` (physics-only).
+        dim: number of observed components.
+    """
+
+    def __init__(self, physics: nn.Module | None, closure: Closure | None, dim: int):
+        super().__init__()
+        if physics is None and closure is None:
+            raise ValueError("a hybrid model needs physics, a closure, or both")
+        if closure is not None and closure.discrete:
+            raise ValueError(f"{type(closure).__name__} is a discrete closure; use HybridFlowMap")
+        self.physics, self.closure, self.dim = physics, closure, int(dim)
+        self.forcing: Callable | None = None  # set by callers for forced systems
+
+    @property
+    def hidden_size(self) -> int:
+        return 0 if self.closure is None else self.closure.hidden_size
+
+    def split(self, state: torch.Tensor):
+        return state[..., : self.dim], state[..., self.dim:]
+
+    def forward(self, t, state: torch.Tensor) -> torch.Tensor:
+        x, r = self.split(state)
+        u = self.forcing(t) if self.forcing is not None else None
+        dx = 0
+        if self.physics is not None:
+            dx = self.physics(t, x, u) if u is not None else self.physics(t, x)
+        if self.closure is None:
+            return dx
+        rr = r if self.hidden_size else None
+        dx = dx + self.closure.correction(x, rr, u)
+        if not self.hidden_size:
+            return dx
+        return torch.cat((dx, self.closure.hidden_field(x, r, u)), dim=-1)
+
+
+class HybridFlowMap(nn.Module):
+    """One observation step of a discrete hybrid model: ``[x_n, r_n] ↦ [x_{n+1}, r_{n+1}]``.
+
+    Args:
+        flow_map: Ψ0 (a :class:`~mnemode.solvers.FlowMap` of the nominal field) or
+            ``None`` for a data-only discrete model (``x_{n+1} = x_n + Δt·m``).
+        closure: memoryless closure or a discrete recurrent one (``discrete=True``).
+        dt: the observation interval Δt.
+    """
+
+    def __init__(self, flow_map: FlowMap | None, closure: Closure | None, dim: int, dt: float):
+        super().__init__()
+        self.flow_map, self.closure, self.dim, self.dt = flow_map, closure, int(dim), float(dt)
+
+    @property
+    def hidden_size(self) -> int:
+        return 0 if self.closure is None else self.closure.hidden_size
+
+    def forward(self, state: torch.Tensor) -> torch.Tensor:
+        x, r = state[..., : self.dim], state[..., self.dim:]
+        base = self.flow_map(x) if self.flow_map is not None else x
+        if self.closure is None:
+            return base
+        rr = r if self.hidden_size else None
+        x_next = base + self.dt * self.closure.correction(x, rr)
+        if not self.hidden_size:
+            return x_next
+        return torch.cat((x_next, self.closure.hidden_field(x, r)), dim=-1)
+
+
+def _initial_state(model, x0: torch.Tensor, r0: torch.Tensor | None) -> torch.Tensor:
+    if model.hidden_size == 0:
+        return x0
+    if r0 is None:
+        r0 = model.closure.initial_hidden(x0.shape[:-1], x0.dtype)
+    return torch.cat((x0, r0), dim=-1)
+
+
+def simulate(model: HybridField | HybridFlowMap, x0: torch.Tensor, n_steps: int, dt: float,
+             solver: Solver | None = None, r0: torch.Tensor | None = None, t0: float = 0.0,
+             return_hidden: bool = False):
+    """Free-run a hybrid model for ``n_steps`` observation intervals of ``dt``.
+
+    Returns observed states ``(n_steps + 1, *x0.shape)`` (and the hidden states if
+    ``return_hidden``). A continuous model needs a ``solver``; a discrete one
+    ignores it (its ``dt`` is fixed by construction).
+    """
+    s0 = _initial_state(model, x0, r0)
+    if isinstance(model, HybridFlowMap):
+        states = [s0]
+        s = s0
+        for _ in range(n_steps):
+            s = model(s)
+            states.append(s)
+        traj = torch.stack(states)
+    else:
+        if solver is None:
+            raise ValueError("simulating a continuous hybrid model needs a solver")
+        traj = solver.unroll(model, s0, t0, dt, n_steps)
+    x = traj[..., : model.dim]
+    return (x, traj[..., model.dim:]) if return_hidden else x
+
+
+class _ObservedDriving(nn.Module):
+    """``dr/dt = g(x_obs(t), r)`` with ``x_obs`` linearly interpolated between samples."""
+
+    def __init__(self, closure: Closure, x_a: torch.Tensor, x_b: torch.Tensor, t_a: float, dt: float, forcing):
+        super().__init__()
+        self.closure, self.x_a, self.x_b, self.t_a, self.dt, self.forcing = closure, x_a, x_b, t_a, dt, forcing
+
+    def forward(self, t, r):
+        w = (t - self.t_a) / self.dt
+        x = self.x_a + w * (self.x_b - self.x_a)
+        u = self.forcing(t) if self.forcing is not None else None
+        return self.closure.hidden_field(x, r, u)
+
+
+def warm_up(model: HybridField | HybridFlowMap, history: torch.Tensor, dt: float,
+            solver: Solver | None = None, r0: torch.Tensor | None = None, t0: float = 0.0,
+            grad_steps: int | None = None) -> torch.Tensor | None:
+    """Hidden state after being driven by observed ``history`` ``(T, *batch, dim)``.
+
+    The observations stand in for the model's ``x``: ``r`` follows
+    ``dr/dt = g(x_obs(t), r)`` (continuous; ``x_obs`` linear between samples) or
+    ``r_{n+1} = cell(x_n, r_n)`` (discrete) from ``r0`` (the closure's initial
+    hidden state by default) over the ``T − 1`` intervals. Returns ``None`` for a
+    memoryless model. ``grad_steps`` keeps the graph only for the last that many
+    intervals (truncated backpropagation saves time on long warm-ups).
+    """
+    if model.hidden_size == 0:
+        return None
+    closure = model.closure
+    r = closure.initial_hidden(history.shape[1:-1], history.dtype) if r0 is None else r0
+    n = history.shape[0] - 1
+    first_grad = 0 if grad_steps is None else max(0, n - grad_steps)
+    forcing = getattr(model, "forcing", None)
+    for i in range(n):
+        if i == first_grad and i > 0:
+            r = r.detach()
+        if isinstance(model, HybridFlowMap):
+            r = closure.hidden_field(history[i], r)
+        else:
+            drive = _ObservedDriving(closure, history[i], history[i + 1], t0 + i * dt, dt, forcing)
+            r = solver.advance(drive, t0 + i * dt, r, dt)
+    return r

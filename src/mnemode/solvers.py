@@ -1,0 +1,197 @@
+"""ODE solvers every stage unrolls through: fixed-step Euler and RK4, adaptive, flow maps.
+
+Solvers are configured objects (``RK4(step=0.01)``), not string keys. The fixed-step
+solvers own their loop: the step is always explicit, output times may be further
+apart than the step (sub-steps are taken between them), there is no ``.item()`` or
+other host synchronisation inside the loop, and everything is differentiable, so
+later stages can compile, export and backpropagate through them. Adaptive
+integration goes through torchdiffeq.
+
+All solvers integrate ``f(t, y)`` where ``y`` has any shape (batch on leading
+dimensions) and return trajectories shaped ``(time, *y.shape)``.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Callable, Sequence
+
+import torch
+from torch import nn
+
+__all__ = ["Solver", "Euler", "RK4", "Adaptive", "FlowMap", "substeps_for", "CountingField"]
+
+Field = Callable[[object, torch.Tensor], torch.Tensor]
+
+
+def substeps_for(interval: float, step: float) -> int:
+    """Number of equal sub-steps no longer than ``step`` that cover ``interval``."""
+    if step <= 0:
+        raise ValueError(f"solver step must be > 0, got {step}")
+    return max(1, math.ceil(interval / step - 1e-9))
+
+
+def _as_floats(times) -> list[float]:
+    if isinstance(times, torch.Tensor):
+        times = times.detach().cpu().tolist()
+    out = [float(t) for t in times]
+    if any(b <= a for a, b in zip(out, out[1:])):
+        raise ValueError("output times must be strictly increasing")
+    return out
+
+
+class Solver:
+    """Common interface: advance one interval, unroll on a regular grid, integrate on any grid."""
+
+    def advance(self, f: Field, t0: float, y: torch.Tensor, dt: float) -> torch.Tensor:
+        raise NotImplementedError
+
+    def unroll(self, f: Field, y0: torch.Tensor, t0: float, dt: float, n_steps: int) -> torch.Tensor:
+        """States at ``t0 + i·dt`` for ``i = 0..n_steps``, shape ``(n_steps + 1, *y0.shape)``."""
+        ys = [y0]
+        y = y0
+        for i in range(n_steps):
+            y = self.advance(f, t0 + i * dt, y, dt)
+            ys.append(y)
+        return torch.stack(ys)
+
+    def integrate(self, f: Field, y0: torch.Tensor, times: Sequence[float] | torch.Tensor) -> torch.Tensor:
+        """States at each of the strictly increasing ``times`` (``y0`` at ``times[0]``)."""
+        ts = _as_floats(times)
+        ys = [y0]
+        y = y0
+        for a, b in zip(ts, ts[1:]):
+            y = self.advance(f, a, y, b - a)
+            ys.append(y)
+        return torch.stack(ys)
+
+
+class _FixedStep(Solver):
+    order: int
+    stages: int
+
+    def __init__(self, step: float):
+        if not step > 0:
+            raise ValueError(f"{type(self).__name__} step must be > 0, got {step}")
+        self.step = float(step)
+
+    def one_step(self, f: Field, t: float, y: torch.Tensor, h: float) -> torch.Tensor:
+        raise NotImplementedError
+
+    def advance(self, f, t0, y, dt):
+        """Advance by ``dt`` with the fewest equal sub-steps no longer than ``step``."""
+        n = substeps_for(dt, self.step)
+        h = dt / n
+        for i in range(n):
+            y = self.one_step(f, t0 + i * h, y, h)
+        return y
+
+    def __repr__(self) -> str:
+        return f"{type(self).__name__}(step={self.step})"
+
+
+class Euler(_FixedStep):
+    """1st order explicit Euler method. Fixed step. Uses 1 stage.
+
+    ``y_{n+1} = y_n + h f(t_n, y_n)``.
+    """
+
+    order, stages = 1, 1
+
+    def one_step(self, f, t, y, h):
+        return y + h * f(t, y)
+
+
+class RK4(_FixedStep):
+    """4th order classical Runge–Kutta method. Fixed step. Uses 4 stages.
+
+    Reference: E. Hairer, S. P. Nørsett, G. Wanner, *Solving ODEs I*, §II.1.
+    """
+
+    order, stages = 4, 4
+
+    def one_step(self, f, t, y, h):
+        k1 = f(t, y)
+        k2 = f(t + h / 2, y + (h / 2) * k1)
+        k3 = f(t + h / 2, y + (h / 2) * k2)
+        k4 = f(t + h, y + h * k3)
+        return y + (h / 6) * (k1 + 2 * k2 + 2 * k3 + k4)
+
+
+class CountingField(nn.Module):
+    """Wraps a vector field and counts its evaluations (``nfe``)."""
+
+    def __init__(self, field: Field):
+        super().__init__()
+        self.field = field
+        self.nfe = 0
+
+    def forward(self, t, y):
+        self.nfe += 1
+        return self.field(t, y)
+
+
+class Adaptive(Solver):
+    """Adaptive-step integration through torchdiffeq (dopri5, dopri8, bosh3, ...).
+
+    Args:
+        method: a torchdiffeq adaptive method name.
+        rtol, atol: error tolerances.
+        max_steps: step budget; exceeding it raises instead of running forever.
+        adjoint: backpropagate with the adjoint method (memory O(1) in the number
+            of steps) instead of directly through the solver's operations.
+
+    Note that torchdiffeq uses one error norm for the whole batch: one stiff
+    trajectory makes every trajectory in the batch take small steps.
+    """
+
+    METHODS = ("dopri5", "dopri8", "bosh3", "fehlberg2", "adaptive_heun")
+
+    def __init__(self, method: str = "dopri5", rtol: float = 1e-7, atol: float = 1e-9,
+                 max_steps: int = 100_000, adjoint: bool = False):
+        if method not in self.METHODS:
+            raise ValueError(f"adaptive method {method!r} is not one of {self.METHODS}")
+        self.method, self.rtol, self.atol = method, float(rtol), float(atol)
+        self.max_steps, self.adjoint = int(max_steps), bool(adjoint)
+        self.nfe = 0
+
+    def integrate(self, f, y0, times):
+        import torchdiffeq
+
+        t = torch.as_tensor(_as_floats(times), dtype=y0.dtype, device=y0.device)
+        counted = f if isinstance(f, CountingField) else CountingField(f)
+        kwargs = dict(rtol=self.rtol, atol=self.atol, method=self.method,
+                      options={"max_num_steps": self.max_steps})
+        if self.adjoint:
+            if not isinstance(counted, nn.Module):  # pragma: no cover - CountingField is a Module
+                raise TypeError("the adjoint method needs an nn.Module vector field")
+            out = torchdiffeq.odeint_adjoint(counted, y0, t, **kwargs)
+        else:
+            out = torchdiffeq.odeint(counted, y0, t, **kwargs)
+        self.nfe += counted.nfe
+        return out
+
+    def advance(self, f, t0, y, dt):
+        return self.integrate(f, y, [t0, t0 + dt])[-1]
+
+    def unroll(self, f, y0, t0, dt, n_steps):
+        return self.integrate(f, y0, [t0 + i * dt for i in range(n_steps + 1)])
+
+    def __repr__(self) -> str:
+        return f"Adaptive(method={self.method!r}, rtol={self.rtol}, atol={self.atol}, adjoint={self.adjoint})"
+
+
+class FlowMap(nn.Module):
+    """The flow map Ψ of a vector field over one interval ``dt``: ``x ↦ x(t + dt)``.
+
+    With the nominal physics and an accurate solver this is Ψ0, the flow map that
+    discrete hybrid models correct. The field must be autonomous or take ``t``
+    relative to the start of the interval.
+    """
+
+    def __init__(self, field: nn.Module, dt: float, solver: Solver):
+        super().__init__()
+        self.field, self.dt, self.solver = field, float(dt), solver
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return self.solver.advance(self.field, 0.0, x, self.dt)
