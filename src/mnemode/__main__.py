@@ -1,0 +1,5 @@
+"""``python -m mnemode`` is the ``mnemode`` command."""
+
+from .cli import main
+
+main()
