@@ -187,8 +187,9 @@ def _export(rest: list[str]) -> None:
     parser.add_argument("run_dir")
     parser.add_argument("--model", default=None, help="which fitted model (default: the run's main model)")
     parser.add_argument("--onnx", action="store_true", default=None, help="also write simulator.onnx")
+    parser.add_argument("--overwrite", action="store_true", help="replace an existing export of this run")
     args, run = _run_dir_arg(parser, rest)
-    manifest = pipeline.export_run(run, model_name=args.model, onnx=args.onnx)
+    manifest = pipeline.export_run(run, model_name=args.model, onnx=args.onnx, overwrite=args.overwrite)
     print(f"exported {manifest.get('model_name', '')} to {run.export_dir}")
     parity = manifest.get("parity", {})
     if parity:
@@ -233,6 +234,7 @@ def _rollout(rest: list[str]) -> None:
                         help="observed history (.csv/.npz) to warm up the hidden state; x0 defaults to its last state")
     parser.add_argument("--steps", type=int, required=True, help="number of observation intervals")
     parser.add_argument("--out", required=True, help="output file, .csv or .npz (never overwritten)")
+    parser.add_argument("--overwrite", action="store_true", help="replace --out if it exists")
     parser.add_argument("--on-envelope", choices=("warn", "error", "ignore"), default="warn",
                         help="what to do when the state leaves the training envelope")
     args = parser.parse_args(rest)
@@ -251,7 +253,7 @@ def _rollout(rest: list[str]) -> None:
         history = load_trajectories(args.history, expected_dim=len(sim.state_names)).states
     if x0 is None and history is None:
         raise MnemodeError("rollout", "needs a starting point", "pass --x0 or --history.")
-    out = rollout_to_file(sim, x0, args.steps, args.out, history=history, progress=True)
+    out = rollout_to_file(sim, x0, args.steps, args.out, history=history, progress=True, overwrite=args.overwrite)
     print(f"wrote {args.steps + 1} states to {out}")
 
 

@@ -163,7 +163,8 @@ class TrajectorySet:
         elif path.suffix == ".csv":
             with atomic_path(path) as tmp:
                 with open(tmp, "w", newline="", encoding="utf-8") as fh:
-                    fh.write("# units: " + ",".join(self.units) + "\n")
+                    # One unit per value column (states, then forcing, whose units are not kept).
+                    fh.write("# units: " + ",".join([*self.units, *[""] * len(self.forcing_names)]) + "\n")
                     w = csv.writer(fh)
                     w.writerow(["trajectory", "time", *self.names, *self.forcing_names])
                     for b in range(self.n_trajectories):
@@ -243,6 +244,10 @@ def _load_npz(path: Path) -> TrajectorySet:
     if states.shape[0] != times.shape[0]:
         raise DataError(str(path), f"{times.shape[0]} times but {states.shape[0]} state samples",
                         "the file is truncated or inconsistent; regenerate it.")
+    for label, arr in (("times", times), ("states", states), ("forcing", forcing), ("hidden", hidden)):
+        if arr is not None and not (np.issubdtype(arr.dtype, np.number) or arr.dtype == np.bool_):
+            raise DataError(str(path), f"array {label!r} holds {arr.dtype} values, not numbers",
+                            f"store {label!r} as a float array.")
     return TrajectorySet(times, states, names, units, forcing, fnames, hidden, meta)
 
 
@@ -255,8 +260,9 @@ def _load_csv(path: Path, state_columns, forcing_columns) -> TrajectorySet:
         if lines[body_start].startswith("# units:"):
             units = tuple(u.strip() for u in lines[body_start][len("# units:"):].split(","))
         body_start += 1
-    rows = list(csv.reader(lines[body_start:]))
-    rows = [r for r in rows if r]
+    # Keep each row's line number in the file (blank lines skipped, not renumbered).
+    numbered = [(body_start + 1 + i, r) for i, r in enumerate(csv.reader(lines[body_start:])) if r]
+    rows = [r for _, r in numbered]
     if not rows:
         raise DataError(str(path), "has no header row", "the first non-comment line must name the columns, "
                         "e.g. 'time,X,Y,Z'.")
@@ -276,7 +282,7 @@ def _load_csv(path: Path, state_columns, forcing_columns) -> TrajectorySet:
     idx = {h: i for i, h in enumerate(header)}
     traj_ids, values = [], []
     wanted = ["time", *state_columns, *forcing_columns]
-    for lineno, r in enumerate(data, start=body_start + 2):
+    for lineno, r in numbered[1:]:
         if len(r) != len(header):
             raise DataError(f"{path}, line {lineno}", f"has {len(r)} fields, expected {len(header)}",
                             "the file is truncated or a row is malformed; fix or regenerate it.")
@@ -303,9 +309,14 @@ def _load_csv(path: Path, state_columns, forcing_columns) -> TrajectorySet:
     nd = len(state_columns)
     states = np.stack([g[:, 1:1 + nd] for g in groups], axis=1)
     forcing = np.stack([g[:, 1 + nd:] for g in groups], axis=1) if forcing_columns else None
-    if units and len(units) != len(header) - sum(h in ("trajectory", "time") for h in header):
-        units = ()
-    return TrajectorySet(times, states, tuple(state_columns), units[:nd] if units else (), forcing,
+    # The units line lists one unit per value column (every column but trajectory and
+    # time), in header order; pick the chosen state columns' units by name.
+    value_columns = [h for h in header if h not in ("trajectory", "time")]
+    state_units = ()
+    if units and len(units) == len(value_columns):
+        by_column = dict(zip(value_columns, units))
+        state_units = tuple(by_column[c] for c in state_columns)
+    return TrajectorySet(times, states, tuple(state_columns), state_units, forcing,
                          tuple(forcing_columns), None, {"source": str(path)})
 
 

@@ -311,6 +311,9 @@ def assess_run(run: RunDir, cfg: DictConfig | None = None, system: System | None
                               n_bins=int(a.n_bins), acf_max_lag=float(a.acf_max_lag),
                               oracle_noise=a.get("oracle_noise"), seed=int(cfg.seed),
                               progress=bool(cfg.progress))
+    log.info("assessing %s (+ physics-only and oracle) on %d test trajectories", ", ".join(models),
+             data.test.n_trajectories)
+    t0 = time.perf_counter()
     writer = _writer(run)
     try:
         result = assess_models(models, data.test, system, settings, out_dir=run.path, writer=writer)
@@ -319,6 +322,7 @@ def assess_run(run: RunDir, cfg: DictConfig | None = None, system: System | None
         writer.close()
     run.update_metrics(assessment=result, **_flat_metrics(result))
     run.mark("assess")
+    log.info("assessment done in %.1f s: report %s", time.perf_counter() - t0, run.path / "report.md")
     return result
 
 
@@ -334,7 +338,8 @@ def _flat_metrics(result: dict) -> dict:
 
 
 def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | None = None,
-               onnx: bool | None = None, system: System | None = None, data: DataSplits | None = None) -> dict:
+               onnx: bool | None = None, system: System | None = None, data: DataSplits | None = None,
+               overwrite: bool = False) -> dict:
     """Export a fitted model of a run as a frozen simulator under ``RUN_DIR/export``."""
     cfg = cfg if cfg is not None else run.load_config()
     from .export import check_exportable, export_simulator
@@ -352,6 +357,8 @@ def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | Non
     model, diagnostics = load_model(run, name, cfg, system, data.dt)
     assessment = run.metrics().get("assessment", {}).get("models", {}).get(name)
     steps = int(round(float(cfg.warm_up) / data.dt))
+    log.info("exporting %s as a frozen simulator", name)
+    t0 = time.perf_counter()
     manifest = export_simulator(
         model, run.export_dir, dt=data.dt,
         solver=None if isinstance(model, HybridFlowMap) else make_solver(cfg),
@@ -361,8 +368,10 @@ def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | Non
         config=OmegaConf.to_container(cfg, resolve=True), time_unit=system.time_unit,
         dtype=dtype_of(cfg), onnx=bool(cfg.export.onnx if onnx is None else onnx),
         extra_manifest={"model_name": name, "envelope_margin": float(cfg.export.envelope_margin)},
+        overwrite=overwrite,
     )
     run.mark("export")
+    log.info("export done in %.1f s: %s", time.perf_counter() - t0, run.export_dir)
     return manifest
 
 
@@ -384,10 +393,11 @@ def run_pipeline(cfg: DictConfig, run_dir: str | Path, *, resume: bool = False, 
         run.mark("data")
         if "fit" in stages:
             fit_models(cfg, run, system, data, resume=resume, only=only)
-        if "assess" in stages and cfg.assess.enabled:
+        if "assess" in stages and cfg.assess.enabled and not (resume and run.stage_done("assess")):
             assess_run(run, cfg, system, data)
-        if "export" in stages and cfg.export.enabled:
-            export_run(run, cfg, system=system, data=data)
+        if "export" in stages and cfg.export.enabled and not (resume and run.stage_done("export")):
+            # a resumed run may have died half-way through writing the export: replace it
+            export_run(run, cfg, system=system, data=data, overwrite=resume)
     except BaseException as exc:
         run.finish("failed", error=str(exc) or type(exc).__name__)
         raise

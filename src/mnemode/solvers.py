@@ -19,7 +19,10 @@ from typing import Callable, Sequence
 import torch
 from torch import nn
 
-__all__ = ["Solver", "Euler", "RK4", "Adaptive", "FlowMap", "substeps_for", "CountingField"]
+from .errors import MnemodeError
+
+__all__ = ["Solver", "Euler", "RK4", "Adaptive", "FlowMap", "substeps_for", "CountingField",
+           "StepBudgetExceeded"]
 
 Field = Callable[[object, torch.Tensor], torch.Tensor]
 
@@ -79,8 +82,11 @@ class _FixedStep(Solver):
         raise NotImplementedError
 
     def advance(self, f, t0, y, dt):
-        """Advance by ``dt`` with the fewest equal sub-steps no longer than ``step``."""
-        n = substeps_for(dt, self.step)
+        """Advance by ``dt`` with the fewest equal sub-steps no longer than ``step``.
+
+        A negative ``dt`` integrates backwards with sub-steps no longer than ``step``.
+        """
+        n = substeps_for(abs(dt), self.step)
         h = dt / n
         for i in range(n):
             y = self.one_step(f, t0 + i * h, y, h)
@@ -131,13 +137,24 @@ class CountingField(nn.Module):
         return self.field(t, y)
 
 
+class StepBudgetExceeded(MnemodeError, RuntimeError):
+    """An adaptive integration needed more steps than its budget allows.
+
+    Also a ``RuntimeError``, so code that treats a blown-up run as a numerical
+    failure (rather than a crash) keeps catching it.
+    """
+
+    exit_code = 3
+
+
 class Adaptive(Solver):
     """Adaptive-step integration through torchdiffeq (dopri5, dopri8, bosh3, ...).
 
     Args:
         method: a torchdiffeq adaptive method name.
         rtol, atol: error tolerances.
-        max_steps: step budget; exceeding it raises instead of running forever.
+        max_steps: step budget; exceeding it raises :class:`StepBudgetExceeded`
+            instead of running forever.
         adjoint: backpropagate with the adjoint method (memory O(1) in the number
             of steps) instead of directly through the solver's operations.
 
@@ -162,13 +179,23 @@ class Adaptive(Solver):
         counted = f if isinstance(f, CountingField) else CountingField(f)
         kwargs = dict(rtol=self.rtol, atol=self.atol, method=self.method,
                       options={"max_num_steps": self.max_steps})
-        if self.adjoint:
-            if not isinstance(counted, nn.Module):  # pragma: no cover - CountingField is a Module
-                raise TypeError("the adjoint method needs an nn.Module vector field")
-            out = torchdiffeq.odeint_adjoint(counted, y0, t, **kwargs)
-        else:
-            out = torchdiffeq.odeint(counted, y0, t, **kwargs)
-        self.nfe += counted.nfe
+        start = counted.nfe
+        try:
+            if self.adjoint:
+                out = torchdiffeq.odeint_adjoint(counted, y0, t, **kwargs)
+            else:
+                out = torchdiffeq.odeint(counted, y0, t, **kwargs)
+        except AssertionError as exc:
+            # torchdiffeq signals an exhausted step budget with a bare assert.
+            if "max_num_steps" not in str(exc):
+                raise
+            raise StepBudgetExceeded(
+                f"{self!r}", f"needed more than max_steps={self.max_steps} steps to integrate from "
+                f"t={float(t[0])!r} to t={float(t[-1])!r}",
+                "raise max_steps, loosen rtol/atol, or use a fixed-step solver such as RK4; a model "
+                "that grows stiff or diverges (e.g. during fitting) also exhausts the budget.") from None
+        finally:
+            self.nfe += counted.nfe - start
         return out
 
     def advance(self, f, t0, y, dt):

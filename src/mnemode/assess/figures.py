@@ -27,6 +27,15 @@ def model_colours(names) -> dict[str, str]:
     return {n: cycle[i % len(cycle)] for i, n in enumerate(names)}
 
 
+_DASHES = ("-", "--", "-.", (0, (1, 1.5)))
+
+
+def _style(name: str, colours: dict) -> dict:
+    """Colour and dash pattern of a model's line: models that coincide stay distinguishable."""
+    i = list(colours).index(name) if name in colours else 0
+    return {"color": colours.get(name, "C0"), "ls": _DASHES[i % len(_DASHES)]}
+
+
 def _panels(n: int, height: float = 2.2, width: float = 8.0, sharex: bool = True):
     fig = Figure(figsize=(width, 0.6 + height * n), layout="constrained")
     axes = fig.subplots(n, 1, sharex=sharex, squeeze=False)[:, 0]
@@ -53,7 +62,7 @@ def forecast_traces_figure(t, truth, forecasts: dict, names, colours: dict, *, h
             ax.plot(history_t, history[:, i], color="0.6", lw=1.0, label="warm-up history" if i == 0 else None)
         ax.plot(t, truth[:, i], color=TRUTH_COLOUR, lw=1.8, label="truth (test data)" if i == 0 else None)
         for name, x in forecasts.items():
-            ax.plot(t, x[:, i], color=colours[name], lw=1.1, label=name if i == 0 else None)
+            ax.plot(t, x[:, i], lw=1.2, label=name if i == 0 else None, **_style(name, colours))
             if validity and validity.get(name) is not None:
                 ax.axvline(validity[name], color=colours[name], ls=":", lw=0.9)
         lo, hi = np.nanmin(truth[:, i]), np.nanmax(truth[:, i])
@@ -73,7 +82,7 @@ def error_growth_figure(t, median_errors: dict, colours: dict, gamma: float, tim
     ax = fig.subplots()
     for name, e in median_errors.items():
         e = np.where(np.isfinite(e) & (e > 0), e, np.nan)
-        ax.plot(t, e, color=colours[name], label=name)
+        ax.plot(t, e, label=name, **_style(name, colours))
     ax.axhline(gamma, color="0.3", ls="--", lw=1.0, label=f"γ = {gamma:g}")
     ax.set_yscale("log")
     ax.set_xlabel(f"forecast time ({time_unit})" if time_unit else "forecast time")
@@ -89,14 +98,15 @@ def validity_figure(validity: dict, colours: dict, horizon: float, lyapunov_expo
     fig = Figure(figsize=(max(5.0, 1.3 * len(validity) + 2), 4.5), layout="constrained")
     ax = fig.subplots()
     names = list(validity)
-    bp = ax.boxplot([np.asarray(validity[n]) for n in names], patch_artist=True, widths=0.6)
+    bp = ax.boxplot([np.asarray(validity[n]) for n in names], patch_artist=True, widths=0.6,
+                    medianprops={"color": "black"})
     ax.set_xticks(range(1, len(names) + 1), names, rotation=20)
     for patch, n in zip(bp["boxes"], names):
         patch.set_facecolor(colours[n])
         patch.set_alpha(0.55)
     ax.axhline(horizon, color="0.3", ls="--", lw=1.0, label="horizon (censored above)")
     ax.set_ylabel(f"validity time ({time_unit})" if time_unit else "validity time")
-    ax.set_ylim(bottom=0)
+    ax.set_ylim(0, 1.08 * horizon)
     if lyapunov_exponent:
         lam = float(lyapunov_exponent)
         sec = ax.secondary_yaxis("right", functions=(lambda v: v * lam, lambda v: v / lam))
@@ -125,10 +135,11 @@ def density_figure(edges_list, truth_counts, model_counts: dict, colours: dict, 
 
         ax.stairs(density(truth_counts[i]), edges, color=TRUTH_COLOUR, lw=1.8, fill=False, label="truth (test data)")
         if floor_counts is not None:
-            ax.stairs(density(floor_counts[i]), edges, color=FLOOR_COLOUR, lw=1.2, ls="--", label="independent truth run")
+            ax.stairs(density(floor_counts[i]), edges, color=FLOOR_COLOUR, lw=1.2, ls="--",
+                      label="independent truth run")
         for name, counts in model_counts.items():
             if counts is not None:
-                ax.stairs(density(counts[i]), edges, color=colours[name], lw=1.1, label=name)
+                ax.stairs(density(counts[i]), edges, lw=1.2, label=name, **_style(name, colours))
         ax.set_ylabel(f"density: {labels[i]}")
     axes[0].legend(fontsize=8, ncol=3)
     axes[-1].set_xlabel("value")
@@ -147,7 +158,7 @@ def acf_figure(lag_t, truth_acf, model_acfs: dict, colours: dict, labels, *, flo
             ax.plot(lag_t, floor_acf[:, i], color=FLOOR_COLOUR, lw=1.2, ls="--", label="independent truth run")
         for name, a in model_acfs.items():
             if a is not None:
-                ax.plot(lag_t, a[:, i], color=colours[name], lw=1.1, label=name)
+                ax.plot(lag_t, a[:, i], lw=1.2, label=name, **_style(name, colours))
         ax.axhline(0.0, color="0.8", lw=0.6)
         ax.set_ylabel(f"ACF: {labels[i]}")
     axes[-1].set_xlabel(f"lag ({time_unit})" if time_unit else "lag")

@@ -36,7 +36,7 @@ import numpy as np
 
 __all__ = [
     "DEFAULT_PSEUDO_COUNT", "histogram_edges", "histogram_counts", "kl_divergence",
-    "marginal_kl", "autocorrelation", "mean_autocorrelation", "acf_error", "segments",
+    "MarginalHistograms", "marginal_kl", "autocorrelation", "mean_autocorrelation", "acf_error", "segments",
 ]
 
 DEFAULT_PSEUDO_COUNT = 0.5
@@ -95,31 +95,49 @@ def kl_divergence(p_counts, q_counts, pseudo_count: float = DEFAULT_PSEUDO_COUNT
         return float(np.sum(p[nz] * (np.log(p[nz]) - np.log(q[nz]))))
 
 
-def marginal_kl(reference, samples, n_bins: int = 50, pooled: bool = False, pad: float = 0.1,
-                pseudo_count: float = DEFAULT_PSEUDO_COUNT):
-    """KL(reference ‖ samples) of the 1-D marginals, on bins from the reference.
+class MarginalHistograms:
+    """Histograms of 1-D marginals on bins fixed by a reference sample (the truth).
 
     Args:
-        reference, samples: arrays ``(..., D)`` (any leading shape; the last axis
-            is the component).
-        pooled: pool all components into one histogram (identical ring sites).
-
-    Returns:
-        ``(kl, per_component, edges)``: the mean divergence, the list of
-        divergences (one entry when pooled) and the inner edges used per entry.
+        reference: ``(..., D)`` reference samples; they fix the bins.
+        n_bins: inner bins per component (two overflow bins are added).
+        pooled: one histogram over all components (identical ring sites).
+        pad: widening of the reference range on each side, as a fraction of it.
+        pseudo_count: added to every bin of both histograms in :meth:`kl`.
     """
-    ref = np.asarray(reference, dtype=np.float64)
-    smp = np.asarray(samples, dtype=np.float64)
-    if pooled:
-        groups = [(ref.ravel(), smp.ravel())]
-    else:
-        groups = [(ref[..., d].ravel(), smp[..., d].ravel()) for d in range(ref.shape[-1])]
-    values, all_edges = [], []
-    for r, s in groups:
-        edges = histogram_edges(r, n_bins, pad)
-        values.append(kl_divergence(histogram_counts(r, edges), histogram_counts(s, edges), pseudo_count))
-        all_edges.append(edges)
-    return float(np.mean(values)), values, all_edges
+
+    def __init__(self, reference, n_bins: int = 50, pooled: bool = False, pad: float = 0.1,
+                 pseudo_count: float = DEFAULT_PSEUDO_COUNT):
+        self.pooled, self.pseudo_count = bool(pooled), float(pseudo_count)
+        groups = self._groups(reference)
+        self.edges = [histogram_edges(g, n_bins, pad) for g in groups]
+        self.reference_counts = [histogram_counts(g, e) for g, e in zip(groups, self.edges)]
+
+    def _groups(self, samples):
+        s = np.asarray(samples, dtype=np.float64)
+        if self.pooled:
+            return [s.ravel()]
+        return [s[..., d].ravel() for d in range(s.shape[-1])]
+
+    def counts(self, samples) -> list[np.ndarray]:
+        """Counts of ``samples`` on the reference bins, one array per group."""
+        return [histogram_counts(g, e) for g, e in zip(self._groups(samples), self.edges)]
+
+    def kl(self, samples) -> tuple[float, list[float]]:
+        """``(mean, per-group)`` KL(reference ‖ samples)."""
+        values = [kl_divergence(p, q, self.pseudo_count)
+                  for p, q in zip(self.reference_counts, self.counts(samples))]
+        return float(np.mean(values)), values
+
+
+def marginal_kl(reference, samples, n_bins: int = 50, pooled: bool = False, pad: float = 0.1,
+                pseudo_count: float = DEFAULT_PSEUDO_COUNT) -> float:
+    """KL(reference ‖ samples) of the 1-D marginals on bins from the reference, averaged over components.
+
+    Arrays are ``(..., D)`` (the last axis is the component); ``pooled`` pools all
+    components into one histogram. See :class:`MarginalHistograms`.
+    """
+    return MarginalHistograms(reference, n_bins, pooled, pad, pseudo_count).kl(samples)[0]
 
 
 def autocorrelation(x, max_lag: int) -> np.ndarray:

@@ -1,0 +1,137 @@
+"""The assessment as Markdown: one table of every model against the baselines, figures, settings, cautions."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from ..fileio import write_text
+
+__all__ = ["metrics_table", "render_report", "write_report"]
+
+CAUTIONS = (
+    "A learned correction is valid only inside its training envelope: the range of states, "
+    "operating conditions and forcing seen in the training data (the exported simulator's manifest "
+    "records it). Outside it the correction can be arbitrarily wrong while looking plausible. "
+    "Scores here come from one test set drawn like the training data; they say nothing about "
+    "conditions the data did not cover. Validate the corrected model independently, against "
+    "measurements it was not trained on, before any use in control, protection or safety decisions. "
+    "The codes, standards and licensed engineering practice of the application govern such use; "
+    "this report does not replace them."
+)
+
+
+def _num(v, fmt: str = ".3g") -> str:
+    return "–" if v is None else format(float(v), fmt)
+
+
+def _validity_cell(m: dict, suffix: str = "") -> str:
+    med = m.get(f"validity_time_median{suffix}")
+    if med is None:
+        return "–"
+    return f"{_num(med)} [{_num(m.get(f'validity_time_q25{suffix}'))}, {_num(m.get(f'validity_time_q75{suffix}'))}]"
+
+
+def metrics_table(result: dict) -> str:
+    """The assessment table in Markdown: one row per model, then the truth-vs-truth floor.
+
+    Columns: validity time median [q25, q75] in time units and in Lyapunov times,
+    the share of forecasts censored at the horizon, KL(truth ‖ model) of the
+    invariant measure, and the autocorrelation error.
+    """
+    unit = "time units"
+    head = (f"| model | validity median [q25, q75] ({unit}) | in Lyapunov times | censored at horizon "
+            "| KL invariant (truth ‖ model) | ACF error |")
+    lines = [head, "|---|---|---|---|---|---|"]
+    for name, m in result.get("models", {}).items():
+        label = name + (" (blew up)" if m.get("blew_up") else "")
+        n = m.get("n_forecasts")
+        cens = (f"{m.get('censored_count', 0)}/{n} ({100 * m.get('censored_fraction', 0.0):.0f} %)"
+                if n else "–")
+        kl = m.get("kl_invariant")
+        acf = m.get("acf_error")
+        kl_cell = "∞ (blew up)" if kl is None and m.get("blew_up") else _num(kl)
+        acf_cell = "– (blew up)" if acf is None and m.get("blew_up") else _num(acf)
+        lines.append(f"| {label} | {_validity_cell(m)} | {_validity_cell(m, '_lyapunov')} | {cens} "
+                     f"| {kl_cell} | {acf_cell} |")
+    floor = result.get("floor") or {}
+    if floor:
+        lines.append(f"| *floor: {floor.get('source', 'truth vs truth')}* | – | – | – "
+                     f"| {_num(floor.get('kl_invariant'))} | {_num(floor.get('acf_error'))} |")
+    return "\n".join(lines) + "\n"
+
+
+def render_report(result: dict, figures: dict[str, str] | None = None) -> str:
+    """The whole report as Markdown; ``figures`` maps a caption to a path relative to the report."""
+    s = result.get("settings", {})
+    unit = "time units"
+    lam, lt = result.get("lyapunov_exponent"), result.get("lyapunov_time")
+    test = result.get("test_set", {})
+    out = ["# Assessment", ""]
+    out.append(
+        "How much better does each model forecast than the physics alone, and how well does it reproduce "
+        "the long-run statistics of the real system? Every model is scored on the same held-out test set "
+        f"({test.get('n_trajectories', '?')} trajectories of {_num(test.get('duration'))} {unit}, sampled every "
+        f"{_num(test.get('dt'))}). Forecasts start from {result.get('n_starts')} points spread along the test "
+        f"trajectories; before each, a model with memory drives its hidden state with the preceding "
+        f"{_num(result.get('warm_up'))} {unit} of observations. The **validity time** is the time until the "
+        f"normalised error ‖x̂ − x‖ / RMS(x) first exceeds γ = {_num(result.get('gamma'))} "
+        f"(RMS(x) = {_num(result.get('scale'))}, the size of x about its mean over the test set); forecasts "
+        f"still valid at the horizon ({_num(result.get('horizon'))} {unit}) are censored there, so a median "
+        "with half or more censored is a lower bound. The **invariant measure** and **autocorrelation** "
+        "come from long free runs of each model; the floor row scores an independent truth run the same "
+        "way, which is what a perfect model could reach with these sample sizes."
+    )
+    if result.get("time_unit"):
+        out += ["", f"One time unit is: {result['time_unit']}."]
+    out += ["", "## Results", "", metrics_table(result)]
+    if lam is not None:
+        src = {"system": "stated by the system", "estimated": "estimated on the truth equations"}.get(
+            result.get("lyapunov_source"), result.get("lyapunov_source") or "")
+        out.append(f"Largest Lyapunov exponent λ = {_num(lam, '.4g')} per unit time ({src}); "
+                   f"one Lyapunov time 1/λ = {_num(lt, '.4g')} {unit}.")
+    else:
+        out.append("The largest Lyapunov exponent is not known for this system, so validity is given in "
+                   "time units only.")
+    out.append("")
+    if "oracle" in result.get("models", {}):
+        out.append("The *oracle* is the truth system started from the true full state (hidden components "
+                   f"included) perturbed by {_num(result.get('oracle_noise'))} of each component's spread: the "
+                   "practical upper limit of forecast skill from these starts. Its long-run statistics are "
+                   "those of the truth (see the floor row).")
+        out.append("")
+    notes = result.get("notes") or []
+    if notes:
+        out += ["### Notes", ""] + [f"- {n}" for n in notes] + [""]
+    out += [
+        "### How the statistics are computed", "",
+        f"- Invariant measure: KL(truth ‖ model) = Σ p ln(p/q) of the 1-D marginals on {s.get('n_bins')} "
+        "equal bins over the test data's range widened by 10 % each side, plus one underflow and one "
+        f"overflow bin; a pseudo-count of {_num(s.get('pseudo_count'))} is added to every bin of both "
+        "histograms before normalising, so empty bins stay finite. "
+        + ("Components are identical ring sites, so their samples are pooled into one histogram."
+           if result.get("pooled") else "The divergence is averaged over components."),
+        f"- Autocorrelation: biased sample ACF (divisor N) up to {_num(s.get('acf_max_lag'))} {unit}, "
+        f"averaged over segments of {_num(result.get('acf_segment_length'))} {unit} so that truth and models "
+        "carry the same small-sample bias; the error is the RMS difference over lags, averaged over "
+        "components" + (" (pooled over ring sites)." if result.get("pooled") else "."),
+        f"- Free runs: {s.get('free_run_starts')} runs of {_num(s.get('free_run_length'))} {unit} after a "
+        f"discarded transient of {_num(s.get('transient'))} {unit}, started at the ends of warm-ups. "
+        "A run that leaves the finite numbers is marked *blew up* and gets no statistics.",
+        "",
+    ]
+    if figures:
+        out += ["## Figures", ""]
+        for caption, path in figures.items():
+            out += [f"**{caption}**", "", f"![{caption}]({path})", ""]
+    out += ["## Settings", "", "| setting | value |", "|---|---|"]
+    for k, v in s.items():
+        out.append(f"| {k} | {v} |")
+    out += ["", "## Cautions", "", CAUTIONS, ""]
+    return "\n".join(out)
+
+
+def write_report(result: dict, out_dir: str | Path, figures: dict[str, str] | None = None) -> Path:
+    """Write ``out_dir/report.md`` atomically and return its path."""
+    path = Path(out_dir) / "report.md"
+    write_text(path, render_report(result, figures))
+    return path

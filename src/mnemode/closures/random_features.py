@@ -1,0 +1,187 @@
+"""Random Fourier features with a ridge readout as a memoryless closure ``m(x[, u])``.
+
+On the closure's normalised inputs ``x̃ ∈ R^D``::
+
+    φ(x̃) = [ sqrt(2/p) · cos(W x̃ / ℓ + b),  1 ]          W_ij ~ N(0, 1),  b_i ~ U(0, 2π)
+    ỹ    = φ(x̃)ᵀ A                                          A ∈ R^{(p+1) × dim}
+
+so that ``φ(a)ᵀφ(b)`` approximates the squared-exponential kernel
+``exp(−‖a − b‖² / (2ℓ²))`` (Rahimi & Recht 2007) plus a constant. ``W`` and ``b`` are
+drawn from ``seed`` (a fixed function of the hyper-parameters, so a closure rebuilt
+from its config has the same features); the readout ``A`` solves the ridge problem
+
+    min_A ‖Φ A − Ỹ‖² + ridge · N · ‖A_{1:p}‖²          (the bias row is not penalised)
+
+in closed form by :func:`mnemode.fitting.ridge.ridge_solve`. The penalty grows with
+the number of pairs ``N`` so that ``ridge`` means the same for any data size.
+``lengthscale`` and ``ridge`` may each be a list: the pair with the smallest
+validation error is chosen (on the given validation pairs, or on a random
+``val_fraction`` of the training pairs held out for the choice), then the readout
+is refitted on all training pairs.
+
+Reference: A. Rahimi & B. Recht, "Random features for large-scale kernel machines",
+NIPS 20 (2007).
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from typing import Sequence
+
+import torch
+from torch import nn
+
+from ..errors import ConfigError, DataError, FitDiverged
+from .base import Closure, Scaling
+
+__all__ = ["RandomFeatureClosure"]
+
+
+def _as_grid(name: str, value) -> list[float]:
+    values = [float(v) for v in value] if isinstance(value, (Sequence, torch.Tensor)) and not isinstance(value, str) \
+        else [float(value)]
+    if not values:
+        raise ConfigError(f"closure.{name}", "is an empty list", "give a number or a non-empty list.")
+    return values
+
+
+class RandomFeatureClosure(Closure):
+    """Memoryless closure: random Fourier features of the normalised inputs, ridge readout.
+
+    Args:
+        dim: number of output components.
+        in_dim: number of inputs (``dim`` plus forcing inputs, or a neighbourhood
+            size inside a ring closure); ``dim`` when ``None``.
+        n_features: number ``p`` of random features.
+        lengthscale: kernel length-scale ℓ in normalised input units, or a list to choose from.
+        ridge: ridge penalty per training pair, or a list to choose from.
+        seed: draws ``W`` and ``b`` (and the held-out pairs for a choice).
+        val_fraction: share of training pairs held out to choose among lists when no
+            validation pairs are given.
+
+    Raises:
+        ConfigError: non-positive sizes, length-scales or negative penalties.
+    """
+
+    def __init__(self, dim: int, in_dim: int | None = None, n_features: int = 300,
+                 lengthscale: float | Sequence[float] = 2.0, ridge: float | Sequence[float] = 1e-8,
+                 seed: int = 0, val_fraction: float = 0.2):
+        super().__init__(dim)
+        self.in_dim = self.dim if in_dim is None else int(in_dim)
+        if self.dim < 1 or self.in_dim < 1 or int(n_features) < 1:
+            raise ConfigError("closure", f"dim={dim}, in_dim={in_dim}, n_features={n_features}; all must be ≥ 1",
+                              "set positive sizes.")
+        self.n_features, self.seed = int(n_features), int(seed)
+        self.lengthscale_grid = _as_grid("lengthscale", lengthscale)
+        self.ridge_grid = _as_grid("ridge", ridge)
+        if min(self.lengthscale_grid) <= 0:
+            raise ConfigError("closure.lengthscale", f"is {lengthscale}; length-scales must be > 0",
+                              "give positive values (≈ 1–5 on normalised inputs).")
+        if min(self.ridge_grid) < 0:
+            raise ConfigError("closure.ridge", f"is {ridge}; penalties must be ≥ 0", "give values ≥ 0.")
+        if not 0 < float(val_fraction) < 1:
+            raise ConfigError("closure.val_fraction", f"is {val_fraction}; expected a value in (0, 1)",
+                              "e.g. 0.2.")
+        self.val_fraction = float(val_fraction)
+        self.scaling = Scaling(self.in_dim, self.dim)
+        gen = torch.Generator().manual_seed(self.seed)
+        self.register_buffer("weights", torch.randn(self.n_features, self.in_dim, generator=gen,
+                                                    dtype=torch.float64).float())
+        self.register_buffer("phases", (2 * math.pi * torch.rand(self.n_features, generator=gen,
+                                                                 dtype=torch.float64)).float())
+        self.register_buffer("lengthscale", torch.tensor(self.lengthscale_grid[0]))
+        self.readout = nn.Parameter(torch.zeros(self.n_features + 1, self.dim))
+
+    def features(self, z: torch.Tensor, lengthscale: float | torch.Tensor | None = None) -> torch.Tensor:
+        """Features ``φ(z̃)`` of *normalised* inputs ``(..., in_dim)`` → ``(..., n_features + 1)``."""
+        ell = self.lengthscale if lengthscale is None else lengthscale
+        w = self.weights.to(z.dtype)
+        proj = z @ w.T / torch.as_tensor(ell, dtype=z.dtype) + self.phases.to(z.dtype)
+        phi = math.sqrt(2.0 / self.n_features) * torch.cos(proj)
+        return torch.cat((phi, torch.ones_like(phi[..., :1])), dim=-1)
+
+    def _join(self, x: torch.Tensor, u: torch.Tensor | None) -> torch.Tensor:
+        return x if u is None else torch.cat((x, u.to(x.dtype)), dim=-1)
+
+    def correction(self, x: torch.Tensor, r: torch.Tensor | None = None,
+                   u: torch.Tensor | None = None) -> torch.Tensor:
+        """``m(x[, u]) = out_offset + out_scale · φ(x̃)ᵀ A``, ``(..., dim)``."""
+        phi = self.features(self.scaling.inputs(self._join(x, u)))
+        return self.scaling.outputs(phi @ self.readout.to(phi.dtype))
+
+    def _normalised(self, inputs, targets):
+        x = torch.as_tensor(inputs).to(torch.float64)
+        y = torch.as_tensor(targets).to(torch.float64)
+        if x.ndim != 2 or x.shape[1] != self.in_dim or y.ndim != 2 or y.shape[1] != self.dim \
+                or x.shape[0] != y.shape[0] or x.shape[0] == 0:
+            raise DataError("random-feature regression data", f"inputs {tuple(x.shape)} and targets "
+                            f"{tuple(y.shape)}; expected (N, {self.in_dim}) and (N, {self.dim}) with N ≥ 1",
+                            "check the closure's dim and in_dim.")
+        s = self.scaling
+        xt = (x - s.in_mean.double()) / s.in_std.double()
+        yt = (y - s.out_offset.double()) / s.out_scale.double()
+        return xt, yt
+
+    def _solve(self, xt, yt, ell, ridge):
+        # Imported here: mnemode.fitting imports the hybrid models, which import closures.
+        from ..fitting.ridge import ridge_solve
+
+        phi = self.features(xt, ell)
+        return ridge_solve(phi, yt, ridge * xt.shape[0], penalise_last=False)
+
+    def fit_regression(self, inputs: torch.Tensor, targets: torch.Tensor, generator: torch.Generator | None = None,
+                       val_inputs: torch.Tensor | None = None, val_targets: torch.Tensor | None = None,
+                       progress: bool = False, log=None) -> dict:
+        """Fit the readout to ``inputs (N, in_dim) → targets (N, dim)`` (physical units).
+
+        Inputs and targets are normalised through ``self.scaling`` (set it first; the
+        regression fitters do). With lists of length-scales or penalties, the best
+        pair on validation data is kept (see the module docstring).
+
+        Returns:
+            ``{'lengthscale', 'ridge', 'selection_error'}`` (plain floats;
+            ``selection_error`` is the relative RMS validation error of the chosen
+            pair, NaN when nothing was chosen).
+
+        Raises:
+            DataError: shapes that do not match ``in_dim``/``dim``.
+            FitDiverged: the readout is not finite.
+        """
+        del progress
+        xt, yt = self._normalised(inputs, targets)
+        grid = [(ell, lam) for ell in self.lengthscale_grid for lam in self.ridge_grid]
+        chosen, sel_err = grid[0], math.nan
+        if len(grid) > 1:
+            if val_inputs is not None and val_targets is not None:
+                fit_x, fit_y = xt, yt
+                vx, vy = self._normalised(val_inputs, val_targets)
+            else:
+                gen = generator if generator is not None else torch.Generator().manual_seed(self.seed)
+                perm = torch.randperm(xt.shape[0], generator=gen)
+                n_val = max(1, int(round(self.val_fraction * xt.shape[0])))
+                vx, vy = xt[perm[:n_val]], yt[perm[:n_val]]
+                fit_x, fit_y = xt[perm[n_val:]], yt[perm[n_val:]]
+            scale = torch.sqrt(((vy - vy.mean(0)) ** 2).sum()).clamp_min(1e-300)
+            best = math.inf
+            for i, (ell, lam) in enumerate(grid):
+                a = self._solve(fit_x, fit_y, ell, lam)
+                err = float(torch.sqrt(((self.features(vx, ell) @ a - vy) ** 2).sum()) / scale)
+                if log is not None:
+                    log("random_features/selection_error", err, i)
+                if err < best:
+                    best, chosen = err, (ell, lam)
+            sel_err = best
+        start = time.perf_counter()
+        readout = self._solve(xt, yt, *chosen)
+        if not bool(torch.isfinite(readout).all()):
+            raise FitDiverged("RandomFeatureClosure", "the ridge readout is not finite",
+                              "raise ridge or check the data for extreme values.")
+        with torch.no_grad():
+            self.readout.copy_(readout.to(self.readout.dtype))
+            self.lengthscale.fill_(chosen[0])
+        return {"lengthscale": float(chosen[0]), "ridge": float(chosen[1]), "selection_error": float(sel_err),
+                "solve_seconds": time.perf_counter() - start}
+
+    def extra_repr(self) -> str:
+        return f"dim={self.dim}, in_dim={self.in_dim}, n_features={self.n_features}"

@@ -1,0 +1,297 @@
+"""Continuous-time recurrent closure: a learned hidden field with a readout into dx/dt.
+
+The closure carries a hidden memory state ``r`` (``hidden_size`` components) that
+follows its own vector field, driven by the normalised observed state
+``x̃ = (x − μ)/s`` (and forcing ``u`` when ``forcing_dim > 0``). Three forms:
+
+* ``'leaky'`` (leaky-linear)::
+
+      dr/dt = A r + B x̃ + b,          A initialised to −diag(1/τ_i)
+
+  It represents linear relaxation towards a driven value exactly (the memory of
+  a heat-storing wall, say) and is cheap to unroll. It is parameterised per
+  state in units of its initial rate λ_i = 1/τ_i (``A = diag(λ) A_rel``,
+  ``B = diag(λ) B_rel``, ``b = λ ⊙ b_rel``, with ``A_rel`` starting at −I), so
+  that a gradient step changes a slow state no more, relative to its own time
+  scale, than a fast one.
+* ``'tanh'`` (continuous-time recurrent network)::
+
+      dr/dt = (−r + tanh(W r + U x̃ + b)) / τ,        τ_i = exp(log_τ_i) learned
+* ``'gated'`` (state-dependent time constants)::
+
+      z = σ(W_z r + U_z x̃ + b_z) · 2/τ_min
+      dr/dt = z ⊙ (tanh(W r + U x̃ + b) − r)
+
+  with ``b_z`` initialised so that the rates start at ``1/τ_i``.
+
+In every form the time constants ``τ_i`` start log-spaced over
+``time_constants = (τ_min, τ_max)``, the plausible range of the memory.
+
+Readout (the term added to dx/dt)::
+
+    'linear':  m = out_offset + out_scale ⊙ (C r + D x̃ + c)
+    'mlp':     m = out_offset + out_scale ⊙ MLP([x̃, r])
+
+A linear readout is linear in the features ``[r, x̃, 1]``, so it can also be
+fitted by ridge regression (:meth:`readout_features`, :meth:`set_readout`).
+
+References:
+    K. Funahashi, Y. Nakamura, Neural Networks 6 (1993) 801–806 (continuous-time
+    recurrent networks); K. Cho et al., EMNLP 2014 (gated units).
+"""
+
+from __future__ import annotations
+
+import math
+
+import torch
+from torch import nn
+
+from ..errors import ConfigError
+from .base import Closure, Scaling
+
+__all__ = ["RecurrentClosure", "log_spaced"]
+
+_FORMS = ("leaky", "gated", "tanh")
+_READOUTS = ("linear", "mlp")
+_INITIAL = ("zeros", "learned", "warm_up")
+_INPUT_INIT = ("random", "filter_bank")
+
+
+def log_spaced(bounds, n: int) -> torch.Tensor:
+    """``n`` values log-spaced over ``bounds = (lo, hi)`` (float64); ``lo`` alone when ``n = 1``."""
+    lo, hi = (float(b) for b in bounds)
+    if not (0 < lo <= hi):
+        raise ConfigError("time_constants", f"is {tuple(bounds)}; expected 0 < τ_min ≤ τ_max",
+                          "give two positive time constants, e.g. [0.1, 10.0].")
+    if n == 1:
+        return torch.tensor([lo], dtype=torch.float64)
+    return torch.logspace(math.log10(lo), math.log10(hi), n, dtype=torch.float64)
+
+
+def _check_choice(name: str, value, choices) -> None:
+    if value not in choices:
+        raise ConfigError(name, f"is {value!r}; expected one of {choices}", f"set {name} to one of {choices}.")
+
+
+def _init_bounds(name: str, bounds) -> tuple[float, float]:
+    try:
+        lo, hi = (float(b) for b in bounds)
+    except (TypeError, ValueError):
+        raise ConfigError(name, f"is {bounds!r}; expected two numbers (τ_min, τ_max)",
+                          "write e.g. time_constants: [0.1, 10.0].") from None
+    log_spaced((lo, hi), 1)  # validates
+    return lo, hi
+
+
+class _MLP(nn.Module):
+    """Two tanh hidden layers; the last layer starts small so the readout starts near its offset."""
+
+    def __init__(self, n_in: int, width: int, n_out: int, gen: torch.Generator):
+        super().__init__()
+        # skip_init: the layers are initialised below from the closure's own generator
+        self.hidden1 = nn.utils.skip_init(nn.Linear, n_in, width)
+        self.hidden2 = nn.utils.skip_init(nn.Linear, width, width)
+        self.out = nn.utils.skip_init(nn.Linear, width, n_out)
+        with torch.no_grad():
+            for layer, gain in ((self.hidden1, 1.0), (self.hidden2, 1.0), (self.out, 0.1)):
+                fan_in = layer.weight.shape[1]
+                layer.weight.copy_(torch.randn(layer.weight.shape, generator=gen) * gain / math.sqrt(fan_in))
+                layer.bias.zero_()
+
+    def forward(self, z):
+        return self.out(torch.tanh(self.hidden2(torch.tanh(self.hidden1(z)))))
+
+
+class RecurrentClosure(Closure):
+    """Closure with a continuous-time recurrent hidden state (see the module docstring).
+
+    Args:
+        dim: observed components corrected.
+        hidden_size: size of the hidden state ``r`` (≥ 1).
+        form: ``'leaky'``, ``'tanh'`` or ``'gated'``.
+        time_constants: ``(τ_min, τ_max)``; initial time constants are log-spaced
+            over this range (time units of the data).
+        readout: ``'linear'`` or ``'mlp'``.
+        readout_width: hidden width of the MLP readout.
+        initial_hidden: the state before any warm-up: ``'zeros'``, ``'learned'``
+            (a trained vector), or ``'warm_up'`` (zeros, and fitting refuses to run
+            without a warm-up, because the state is only meaningful once driven by
+            observations).
+        input_init: ``'random'`` (Gaussian input weights) or ``'filter_bank'``
+            (leaky form only: the hidden state starts as a bank of leaky
+            integrators, one per input and time constant, so ``hidden_size`` must
+            be a multiple of the number of inputs; a good start for a ridge readout).
+        coupling: leaky form only: learn a full matrix ``A`` (``True``) or only each
+            state's own time constant, ``A = −diag(λ ⊙ exp(s))`` with ``s`` learned
+            from 0 (``False``: a bank of leaky integrators with learned time
+            constants and input mixing, which keeps fine-tuning well conditioned).
+        forcing_dim: number of forcing inputs ``u`` the closure sees (0: ignores ``u``).
+        seed: seeds the initial weights (construction never touches the global RNG).
+
+    Raises:
+        ConfigError: an unknown option or inconsistent sizes.
+    """
+
+    def __init__(self, dim: int, hidden_size: int = 8, form: str = "leaky",
+                 time_constants=(0.1, 10.0), readout: str = "linear", readout_width: int = 32,
+                 initial_hidden: str = "zeros", input_init: str = "random", coupling: bool = True,
+                 forcing_dim: int = 0, seed: int = 0):
+        super().__init__(dim)
+        _check_choice("form", form, _FORMS)
+        _check_choice("readout", readout, _READOUTS)
+        _check_choice("initial_hidden", initial_hidden, _INITIAL)
+        _check_choice("input_init", input_init, _INPUT_INIT)
+        if int(hidden_size) < 1:
+            raise ConfigError("hidden_size", f"is {hidden_size}; a recurrent closure needs at least 1 hidden state",
+                              "use a memoryless closure for hidden_size 0.")
+        self.hidden_size = int(hidden_size)
+        self.form, self.readout, self.readout_width = form, readout, int(readout_width)
+        self.time_constants = _init_bounds("time_constants", time_constants)
+        self.initial_hidden_mode, self.input_init, self.coupling = initial_hidden, input_init, bool(coupling)
+        self.forcing_dim, self.seed = int(forcing_dim), int(seed)
+        n_in = self.dim + self.forcing_dim
+        self.in_dim = n_in
+        if input_init == "filter_bank":
+            if form != "leaky":
+                raise ConfigError("input_init", f"'filter_bank' needs form='leaky', got form={form!r}",
+                                  "use input_init='random' or form='leaky'.")
+            if self.hidden_size % n_in:
+                raise ConfigError("hidden_size", f"is {hidden_size}, not a multiple of the {n_in} inputs that "
+                                  "input_init='filter_bank' gives one integrator each per time constant",
+                                  f"use hidden_size = {n_in} × (number of time constants), e.g. {6 * n_in}.")
+        self.scaling = Scaling(n_in, self.dim)
+
+        gen = torch.Generator().manual_seed(self.seed)
+        dtype = torch.get_default_dtype()
+        H = self.hidden_size
+
+        def randn(*shape, scale=1.0):
+            return (torch.randn(shape, generator=gen, dtype=torch.float64) * scale).to(dtype)
+
+        if input_init == "filter_bank":
+            taus = log_spaced(self.time_constants, H // n_in).repeat_interleave(n_in)
+        else:
+            taus = log_spaced(self.time_constants, H)
+        rates = (1.0 / taus)
+        if form == "leaky":
+            # A = diag(λ)·A_rel, B = diag(λ)·B_rel, b = λ ⊙ b_rel with the initial rates λ = 1/τ fixed:
+            # each state's parameters are in units of its own rate, so an optimiser step changes a
+            # slow state as little, relative to its time constant, as a fast one
+            self.register_buffer("rate", rates.to(dtype))
+            if self.coupling:
+                self.A_rel = nn.Parameter(-torch.eye(H, dtype=dtype))
+            else:
+                self.log_rate = nn.Parameter(torch.zeros(H, dtype=dtype))
+            if input_init == "filter_bank":
+                # state k integrates input k mod n_in with time constant τ_k: dr_k/dt = (x̃_j − r_k)/τ_k
+                B = torch.zeros(H, n_in, dtype=torch.float64)
+                B[torch.arange(H), torch.arange(H) % n_in] = 1.0
+            else:
+                B = torch.randn((H, n_in), generator=gen, dtype=torch.float64) / math.sqrt(n_in)
+            self.B_rel = nn.Parameter(B.to(dtype))
+            self.b_rel = nn.Parameter(torch.zeros(H, dtype=dtype))
+        else:
+            self.W = nn.Parameter(randn(H, H, scale=0.5 / math.sqrt(H)))
+            self.U = nn.Parameter(randn(H, n_in, scale=1.0 / math.sqrt(n_in)))
+            self.bias = nn.Parameter(torch.zeros(H, dtype=dtype))
+            if form == "tanh":
+                self.log_tau = nn.Parameter(taus.log().to(dtype))
+            else:
+                self.W_z = nn.Parameter(randn(H, H, scale=0.1 / math.sqrt(H)))
+                self.U_z = nn.Parameter(randn(H, n_in, scale=0.1 / math.sqrt(n_in)))
+                # σ(b_z)·2/τ_min = 1/τ_i at the start
+                p = (self.time_constants[0] / (2.0 * taus)).clamp(1e-6, 1 - 1e-6)
+                self.b_z = nn.Parameter(torch.log(p / (1 - p)).to(dtype))
+        if readout == "linear":
+            self.C = nn.Parameter(randn(self.dim, H, scale=0.1 / math.sqrt(H)))
+            self.D = nn.Parameter(torch.zeros(self.dim, n_in, dtype=dtype))
+            self.c = nn.Parameter(torch.zeros(self.dim, dtype=dtype))
+        else:
+            self.mlp = _MLP(n_in + H, self.readout_width, self.dim, gen).to(dtype)
+        if initial_hidden == "learned":
+            self.r0 = nn.Parameter(torch.zeros(H, dtype=dtype))
+
+    # -- inputs -------------------------------------------------------------------
+    def _inputs(self, x, u):
+        """Normalised closure inputs ``x̃`` (of ``[x, u]`` when the closure sees forcing)."""
+        if self.forcing_dim == 0:
+            return self.scaling.inputs(x)
+        if u is None:
+            raise ConfigError(f"{type(self).__name__}(forcing_dim={self.forcing_dim})",
+                              "was called without forcing inputs u", "set the model's forcing or forcing_dim=0.")
+        return self.scaling.inputs(torch.cat((x, u.expand(*x.shape[:-1], u.shape[-1]).to(x.dtype)), dim=-1))
+
+    # -- the contract -------------------------------------------------------------
+    def hidden_field(self, x, r, u=None):
+        """``dr/dt`` for the chosen form (module docstring)."""
+        z = self._inputs(x, u)
+        if self.form == "leaky":
+            own = r @ self.A_rel.T if self.coupling else -r * torch.exp(self.log_rate)
+            return (own + z @ self.B_rel.T + self.b_rel) * self.rate
+        pre = torch.tanh(r @ self.W.T + z @ self.U.T + self.bias)
+        if self.form == "tanh":
+            return (pre - r) * torch.exp(-self.log_tau)
+        rate = torch.sigmoid(r @ self.W_z.T + z @ self.U_z.T + self.b_z) * (2.0 / self.time_constants[0])
+        return rate * (pre - r)
+
+    def correction(self, x, r=None, u=None):
+        """The readout ``m(x, r)`` added to dx/dt (module docstring)."""
+        if r is None:
+            raise ConfigError(type(self).__name__, "needs its hidden state r, got None",
+                              "simulate it inside a HybridField, which carries r.")
+        z = self._inputs(x, u)
+        if self.readout == "linear":
+            y = r @ self.C.T + z @ self.D.T + self.c
+        else:
+            y = self.mlp(torch.cat((z, r.expand(*z.shape[:-1], r.shape[-1])), dim=-1))
+        return self.scaling.outputs(y)
+
+    @property
+    def A(self) -> torch.Tensor:
+        """Leaky form: the hidden state's matrix ``A = diag(λ)·A_rel`` (``−diag(λ ⊙ e^s)`` uncoupled)."""
+        if not self.coupling:
+            return torch.diag(-self.rate * torch.exp(self.log_rate))
+        return self.rate[:, None] * self.A_rel
+
+    @property
+    def B(self) -> torch.Tensor:
+        """Leaky form: the input matrix ``B = diag(λ)·B_rel``."""
+        return self.rate[:, None] * self.B_rel
+
+    @property
+    def b(self) -> torch.Tensor:
+        """Leaky form: the hidden field's offset ``b = λ ⊙ b_rel``."""
+        return self.rate * self.b_rel
+
+    def initial_hidden(self, batch_shape, dtype=torch.float32):
+        if self.initial_hidden_mode == "learned":
+            return self.r0.to(dtype).expand(*batch_shape, self.hidden_size)
+        return super().initial_hidden(batch_shape, dtype)
+
+    # -- ridge readout (linear readout only) ----------------------------------------
+    @property
+    def has_linear_readout(self) -> bool:
+        return self.readout == "linear"
+
+    def readout_features(self, x, r, u=None) -> torch.Tensor:
+        """Features ``[r, x̃(, u), 1]`` in which the linear readout is linear."""
+        z = self._inputs(x, u)
+        one = torch.ones((*z.shape[:-1], 1), dtype=z.dtype, device=z.device)
+        return torch.cat((r, z, one), dim=-1)
+
+    def set_readout(self, weight: torch.Tensor) -> None:
+        """Set ``C, D, c`` from ridge weights ``(H + n_in + 1, dim)`` (normalised output units)."""
+        if self.readout != "linear":
+            raise ConfigError("readout", "'mlp' readouts cannot be set by ridge regression",
+                              "use readout='linear' with a ridge fitter, or a trajectory fit.")
+        H, n = self.hidden_size, self.in_dim
+        w = weight.to(self.C.dtype)
+        with torch.no_grad():
+            self.C.copy_(w[:H].T)
+            self.D.copy_(w[H:H + n].T)
+            self.c.copy_(w[H + n])
+
+    def extra_repr(self) -> str:
+        return (f"dim={self.dim}, hidden_size={self.hidden_size}, form={self.form!r}, "
+                f"readout={self.readout!r}, time_constants={self.time_constants}")

@@ -1,0 +1,160 @@
+"""Reservoir closure: a fixed hidden field driven by the observations, a ridge-fitted readout.
+
+The hidden field has no trained weights (they are buffers); only the readout is
+learned, in closed form, by :class:`mnemode.fitting.ReadoutRidge` (seconds, no
+backpropagation). Two kinds:
+
+* ``'filter_bank'`` — a bank of leaky integrators, one per input and time
+  constant ``τ_k`` (log-spaced over ``time_constants``)::
+
+      dr_{k,j}/dt = (x̃_j − r_{k,j}) / τ_k
+
+  Each state is an exponentially weighted average of one input's past over the
+  last ~τ_k: a fixed, interpretable memory basis.
+* ``'random'`` — a continuous-time echo-state network::
+
+      dr/dt = (−r + tanh(W r + U x̃ + b)) / τ
+
+  ``W`` random Gaussian rescaled to the given spectral radius, ``U`` random
+  Gaussian times ``input_scale``, ``b`` Gaussian times ``bias_scale``, ``τ_i``
+  log-spaced over ``time_constants``.
+
+Readout, linear in the features ``φ = [x̃, r, (products of [x̃, r]), 1]``::
+
+    m = out_offset + out_scale ⊙ (φ W_out)
+
+References:
+    H. Jaeger, GMD Report 148 (2001) (echo-state networks); M. Lukoševičius,
+    *A practical guide to applying echo state networks* (2012).
+"""
+
+from __future__ import annotations
+
+import torch
+from torch import nn
+
+from ..errors import ConfigError
+from .base import Closure, Scaling
+from .recurrent import _check_choice, _init_bounds, log_spaced
+
+__all__ = ["ReservoirClosure"]
+
+_KINDS = ("filter_bank", "random")
+_DEFAULT_RANDOM_SIZE = 100
+_DEFAULT_FILTERS = 6
+
+
+class ReservoirClosure(Closure):
+    """Closure with a fixed recurrent hidden field and a linear readout (module docstring).
+
+    Args:
+        dim: observed components corrected.
+        hidden_size: hidden state size; ``None`` gives 6 integrators per input
+            (``filter_bank``) or 100 (``random``). For ``filter_bank`` it must be
+            a multiple of the number of inputs.
+        kind: ``'filter_bank'`` or ``'random'``.
+        time_constants: ``(τ_min, τ_max)`` of the integrators / leak rates.
+        spectral_radius: ``random`` only: largest |eigenvalue| of ``W``.
+        input_scale: ``random`` only: scale of the input weights ``U``.
+        bias_scale: ``random`` only: scale of the bias ``b``.
+        quadratic: add the pairwise products of ``[x̃, r]`` to the readout features.
+        ridge: ridge penalty α per sample used by :class:`~mnemode.fitting.ReadoutRidge`,
+            or a list of them from which the fit picks the best on validation data.
+        forcing_dim: forcing inputs the closure sees (0: ignores ``u``).
+        seed: seeds the random weights.
+    """
+
+    def __init__(self, dim: int, hidden_size: int | None = None, kind: str = "filter_bank",
+                 time_constants=(0.1, 10.0), spectral_radius: float = 0.9, input_scale: float = 1.0,
+                 bias_scale: float = 0.0, quadratic: bool = False, ridge=(1e-8, 1e-6, 1e-4),
+                 forcing_dim: int = 0, seed: int = 0):
+        super().__init__(dim)
+        _check_choice("kind", kind, _KINDS)
+        self.kind, self.forcing_dim, self.seed = kind, int(forcing_dim), int(seed)
+        self.time_constants = _init_bounds("time_constants", time_constants)
+        self.spectral_radius, self.input_scale = float(spectral_radius), float(input_scale)
+        self.bias_scale, self.quadratic = float(bias_scale), bool(quadratic)
+        self.ridge = [float(a) for a in ridge] if hasattr(ridge, "__len__") else float(ridge)
+        n_in = self.dim + self.forcing_dim
+        self.in_dim = n_in
+        if hidden_size is None:
+            hidden_size = _DEFAULT_FILTERS * n_in if kind == "filter_bank" else _DEFAULT_RANDOM_SIZE
+        H = int(hidden_size)
+        if H < 1:
+            raise ConfigError("hidden_size", f"is {hidden_size}; a reservoir needs at least 1 hidden state",
+                              "use a memoryless closure for hidden_size 0.")
+        if kind == "filter_bank" and H % n_in:
+            raise ConfigError("hidden_size", f"is {H}, not a multiple of the {n_in} inputs (a filter bank has one "
+                              "integrator per input and time constant)", f"use e.g. hidden_size={6 * n_in}.")
+        if min(self.ridge if isinstance(self.ridge, list) else [self.ridge], default=-1.0) < 0:
+            raise ConfigError("ridge", f"is {ridge}; expected a penalty ≥ 0 or a non-empty list of them",
+                              "use e.g. ridge: 1e-6 or ridge: [1e-8, 1e-6, 1e-4].")
+        self.hidden_size = H
+        self.scaling = Scaling(n_in, self.dim)
+        dtype = torch.get_default_dtype()
+        gen = torch.Generator().manual_seed(self.seed)
+        if kind == "filter_bank":
+            taus = log_spaced(self.time_constants, H // n_in).repeat_interleave(n_in)
+            self.register_buffer("input_index", torch.arange(H) % n_in)
+        else:
+            taus = log_spaced(self.time_constants, H)
+            W = torch.randn((H, H), generator=gen, dtype=torch.float64)
+            radius = torch.linalg.eigvals(W).abs().max().real
+            self.register_buffer("W", (W * (self.spectral_radius / radius)).to(dtype))
+            U = torch.randn((H, n_in), generator=gen, dtype=torch.float64) * self.input_scale
+            self.register_buffer("U", U.to(dtype))
+            self.register_buffer("bias", (torch.randn(H, generator=gen, dtype=torch.float64)
+                                          * self.bias_scale).to(dtype))
+        self.register_buffer("inv_tau", (1.0 / taus).to(dtype))
+        self.n_features = self._feature_count()
+        self.readout_weight = nn.Parameter(torch.zeros(self.n_features, self.dim, dtype=dtype))
+
+    def _feature_count(self) -> int:
+        n = self.in_dim + self.hidden_size
+        return n + (n * (n + 1) // 2 if self.quadratic else 0) + 1
+
+    def _inputs(self, x, u):
+        """Normalised closure inputs ``x̃`` (of ``[x, u]`` when the closure sees forcing)."""
+        if self.forcing_dim == 0:
+            return self.scaling.inputs(x)
+        if u is None:
+            raise ConfigError(f"{type(self).__name__}(forcing_dim={self.forcing_dim})",
+                              "was called without forcing inputs u", "set the model's forcing or forcing_dim=0.")
+        return self.scaling.inputs(torch.cat((x, u.expand(*x.shape[:-1], u.shape[-1]).to(x.dtype)), dim=-1))
+
+    def hidden_field(self, x, r, u=None):
+        """``dr/dt`` of the fixed reservoir (module docstring)."""
+        z = self._inputs(x, u)
+        if self.kind == "filter_bank":
+            return (z[..., self.input_index] - r) * self.inv_tau
+        return (torch.tanh(r @ self.W.T + z @ self.U.T + self.bias) - r) * self.inv_tau
+
+    # -- readout ----------------------------------------------------------------
+    has_linear_readout = True
+
+    def readout_features(self, x, r, u=None) -> torch.Tensor:
+        """Features ``φ = [x̃(, u), r, (pairwise products), 1]``."""
+        z = self._inputs(x, u)
+        base = torch.cat((z, r.expand(*z.shape[:-1], r.shape[-1])), dim=-1)
+        parts = [base]
+        if self.quadratic:
+            i, j = torch.triu_indices(base.shape[-1], base.shape[-1], device=base.device)
+            parts.append(base[..., i] * base[..., j])
+        parts.append(torch.ones((*base.shape[:-1], 1), dtype=base.dtype, device=base.device))
+        return torch.cat(parts, dim=-1)
+
+    def set_readout(self, weight: torch.Tensor) -> None:
+        """Set the readout from ridge weights ``(n_features, dim)`` (normalised output units)."""
+        with torch.no_grad():
+            self.readout_weight.copy_(weight.to(self.readout_weight.dtype))
+
+    def correction(self, x, r=None, u=None):
+        if r is None:
+            raise ConfigError(type(self).__name__, "needs its hidden state r, got None",
+                              "simulate it inside a HybridField, which carries r.")
+        return self.scaling.outputs(self.readout_features(x, r, u) @ self.readout_weight)
+
+    def extra_repr(self) -> str:
+        return (f"dim={self.dim}, hidden_size={self.hidden_size}, kind={self.kind!r}, "
+                f"time_constants={self.time_constants}, quadratic={self.quadratic}")
+
