@@ -124,7 +124,8 @@ def _measure(log_path: str, budget_seconds: float, steps: int) -> None:
     t = time.perf_counter()
     bank = HybridField(system.nominal, ReservoirClosure(3, kind="filter_bank"), 3).double()
     ReadoutRidge(alpha=[1e-8, 1e-6, 1e-4]).fit(bank, train, val, FitContext(solver=RK4(DT), warm_up=WARM_UP))
-    log(f"filter bank + ridge ({time.perf_counter() - t:.1f} s): validity {quartiles(validity(bank, test, scale, n_starts))}")
+    log(f"filter bank + ridge ({time.perf_counter() - t:.1f} s): "
+        f"validity {quartiles(validity(bank, test, scale, n_starts))}")
 
     t = time.perf_counter()
     closure = RecurrentClosure(3, hidden_size=18, input_init="filter_bank", coupling=False)

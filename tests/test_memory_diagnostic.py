@@ -41,7 +41,6 @@ def _demo(tau: float, step: float):
     return system, train, val
 
 
-@pytest.mark.slow
 def test_memoryless_regime_and_memory_regime_are_told_apart():
     # τ = 0.01: the wall follows the fluid (P ≈ Y/2, Q ≈ Z/2), a function of x; RK4 step ≤ τ keeps
     # the fast wall mode accurate

@@ -22,7 +22,7 @@ from mnemode.closures import GRUFlowClosure, RecurrentClosure, ReservoirClosure
 from mnemode.data import generate
 from mnemode.errors import ConfigError
 from mnemode.hybrid import HybridField, HybridFlowMap, simulate, warm_up
-from mnemode.solvers import RK4, Adaptive, Euler, FlowMap
+from mnemode.solvers import RK4, Adaptive, Euler
 from mnemode.systems import thermosyphon
 
 torch.set_num_threads(1)

@@ -179,7 +179,8 @@ def test_units_and_wall_time_budget(demo):
     out = _small_fit(steps=30, val_every=1, val_windows=4, patience=2, horizon=0.1, readout_init="offset").fit(
         model, train, val, FitContext(solver=RK4(DT), warm_up=0.5, writer=rec, name="p"))
     # early stop: two validations in a row without a better median (then mean) validity time
-    scores = [(m, a) for (_, m), (_, a) in zip(rec.scalars["p/val/validity_median"], rec.scalars["p/val/validity_mean"])]
+    scores = [(m, a) for (_, m), (_, a) in zip(rec.scalars["p/val/validity_median"],
+                                               rec.scalars["p/val/validity_mean"])]
     assert out["stop_reason"] == "early_stop" and out["steps"] < 30
     assert max(scores[:-2]) >= max(scores[-2:]) and len(scores) == out["steps"] + 1
 

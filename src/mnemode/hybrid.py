@@ -96,6 +96,9 @@ class HybridFlowMap(nn.Module):
 
     def __init__(self, flow_map: FlowMap | None, closure: Closure | None, dim: int, dt: float):
         super().__init__()
+        if closure is not None and closure.hidden_size and not closure.discrete:
+            raise ValueError(f"{type(closure).__name__} has a continuous hidden field (dr/dt); a discrete model "
+                             "needs a recurrent cell (e.g. GRUFlowClosure) or a memoryless closure")
         self.flow_map, self.closure, self.dim, self.dt = flow_map, closure, int(dim), float(dt)
 
     @property
@@ -180,12 +183,19 @@ def warm_up(model: HybridField | HybridFlowMap, history: torch.Tensor, dt: float
     n = history.shape[0] - 1
     first_grad = 0 if grad_steps is None else max(0, n - grad_steps)
     forcing = getattr(model, "forcing", None)
-    for i in range(n):
-        if i == first_grad and i > 0:
-            r = r.detach()
+
+    def advance(i, r):
         if isinstance(model, HybridFlowMap):
-            r = closure.hidden_field(history[i], r)
-        else:
-            drive = _ObservedDriving(closure, history[i], history[i + 1], t0 + i * dt, dt, forcing)
-            r = solver.advance(drive, t0 + i * dt, r, dt)
+            return closure.hidden_field(history[i], r)
+        drive = _ObservedDriving(closure, history[i], history[i + 1], t0 + i * dt, dt, forcing)
+        return solver.advance(drive, t0 + i * dt, r, dt)
+
+    if first_grad > 0:
+        # the early history still sets the state, but is not differentiated through
+        with torch.no_grad():
+            for i in range(first_grad):
+                r = advance(i, r)
+        r = r.detach()
+    for i in range(first_grad, n):
+        r = advance(i, r)
     return r

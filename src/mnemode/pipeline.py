@@ -175,6 +175,10 @@ def build_model(spec: DictConfig, system: System, dt: float, dtype=torch.float64
                               "'continuous'", "set model.form=discrete for this closure.")
         model = HybridField(physics, closure, system.dim)
     elif form == "discrete":
+        if closure is not None and closure.hidden_size and not closure.discrete:
+            raise ConfigError(f"{what}", f"{type(closure).__name__} has a continuous hidden field but the model "
+                              "form is 'discrete'", "use closure=gru_flow for a discrete model with memory, or "
+                              "set model.form=continuous.")
         flow = None
         if physics is not None:
             flow = FlowMap(physics, dt, RK4(float(spec.get("psi0_step") or dt / 10)))

@@ -108,7 +108,9 @@ class RecurrentClosure(Closure):
 
     Args:
         dim: observed components corrected.
-        hidden_size: size of the hidden state ``r`` (≥ 1).
+        hidden_size: size of the hidden state ``r`` (≥ 1); ``None`` gives 6 per input
+            (one leaky integrator per input and time constant) with
+            ``input_init='filter_bank'``, 8 otherwise.
         form: ``'leaky'``, ``'tanh'`` or ``'gated'``.
         time_constants: ``(τ_min, τ_max)``; initial time constants are log-spaced
             over this range (time units of the data).
@@ -133,7 +135,7 @@ class RecurrentClosure(Closure):
         ConfigError: an unknown option or inconsistent sizes.
     """
 
-    def __init__(self, dim: int, hidden_size: int = 8, form: str = "leaky",
+    def __init__(self, dim: int, hidden_size: int | None = 8, form: str = "leaky",
                  time_constants=(0.1, 10.0), readout: str = "linear", readout_width: int = 32,
                  initial_hidden: str = "zeros", input_init: str = "random", coupling: bool = True,
                  forcing_dim: int = 0, seed: int = 0):
@@ -142,6 +144,8 @@ class RecurrentClosure(Closure):
         _check_choice("readout", readout, _READOUTS)
         _check_choice("initial_hidden", initial_hidden, _INITIAL)
         _check_choice("input_init", input_init, _INPUT_INIT)
+        if hidden_size is None:
+            hidden_size = 6 * (self.dim + int(forcing_dim)) if input_init == "filter_bank" else 8
         if int(hidden_size) < 1:
             raise ConfigError("hidden_size", f"is {hidden_size}; a recurrent closure needs at least 1 hidden state",
                               "use a memoryless closure for hidden_size 0.")

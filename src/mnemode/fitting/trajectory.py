@@ -434,7 +434,8 @@ class TrajectoryFit:
                 loss = (((pred - truth) / x_std) ** 2).mean()
                 if not bool(torch.isfinite(loss)):
                     raise FitDiverged(f"trajectory fit of {tag}, step {step}",
-                                      f"the forecast loss is {float(loss.detach())} (forecast of {n_f * dt:g} time units)",
+                                      f"the forecast loss is {float(loss.detach())} "
+                                      f"(forecast of {n_f * dt:g} time units)",
                                       f"lower fit.lr (now {lr0:g}), shorten fit.horizon (now up to "
                                       f"{self.horizon[1]:g} {self.unit}), or use a smaller solver step.")
                 optimiser.zero_grad(set_to_none=True)
