@@ -144,3 +144,24 @@ def test_bring_your_own_physics_example_runs_end_to_end(tmp_path):
     assert "oracle" not in metrics["models"] or metrics["models"]["oracle"]["validity_time_median"] is None
     manifest = json.loads((run / "export" / "simulator.json").read_text())
     assert manifest["state"]["names"] == ["v", "i"]
+
+
+def test_multirun_sweep_writes_one_finished_run_per_job_and_resume_skips_them(tmp_path):
+    r = mnemode("fit", "-m", "experiment=tiny", "progress=false", "baselines=none", "fit.steps=4",
+                "system.wall_response_time=0.1,1.0", "hydra.sweep.dir=runs/sweep", cwd=tmp_path)
+    assert r.returncode == 0, r.stderr[-3000:]
+    jobs = sorted((tmp_path / "runs" / "sweep").glob("job*"))
+    assert len(jobs) == 2
+    taus = set()
+    for job in jobs:
+        assert json.loads((job / "status.json").read_text())["state"] == "finished"
+        taus.add(float(__import__("yaml").safe_load((job / "config.yaml").read_text())["system"]["wall_response_time"]))
+    assert taus == {0.1, 1.0}
+    r = mnemode("resume", str(tmp_path / "runs" / "sweep"), cwd=tmp_path)
+    assert r.returncode == 0 and r.stdout.count("finished, skipped") == 2
+
+
+def test_diagnose_recommends_memory_on_the_memory_regime(tmp_path):
+    r = mnemode("diagnose", "experiment=tiny", "progress=false", cwd=tmp_path)
+    assert r.returncode == 0, r.stderr[-3000:]
+    assert "recommendation: memory ->" in r.stdout

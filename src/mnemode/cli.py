@@ -128,12 +128,29 @@ def _dispatch(command: str, cfg, run_dir: Path) -> None:
         system = pipeline.make_system(cfg)
         data = pipeline.prepare_data(cfg, system, progress=bool(cfg.progress))
         report = memory_need(data.train, data.val, system.nominal)
-        for k, v in report.items():
-            print(f"{k}: {v}")
+        print(_memory_report(report))
         return
     stages = ("fit",) if command == "fit" else ("fit", "assess", "export")
     run = pipeline.run_pipeline(cfg, run_dir, stages=stages)
     _print_summary(run)
+
+
+def _memory_report(report: dict) -> str:
+    advice = {
+        "memory": "train a memory closure: closure=leaky_memory fit=trajectory "
+                  "(or closure=filter_bank fit=readout_ridge for an answer in seconds)",
+        "memoryless": "a memoryless closure suffices: closure=random_features fit=derivative "
+                      "(fit=flow_map if the sampling is coarse)",
+    }
+    lines = [
+        "Does the missing term need memory?",
+        f"  best memoryless correction explains     {100 * report['memoryless_explained']:6.2f} % of the residual variance",
+        f"  adding the recent history of x explains {100 * report['history_explained']:6.2f} %",
+        f"  history explains {100 * report['remaining_explained']:.1f} % of what the memoryless fit leaves "
+        f"(threshold {100 * report['threshold']:.0f} %)",
+        f"  recommendation: {report['recommendation']} -> {advice.get(report['recommendation'], '')}",
+    ]
+    return "\n".join(lines)
 
 
 def _print_summary(run) -> None:

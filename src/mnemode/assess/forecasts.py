@@ -48,7 +48,8 @@ class Starts:
         return Starts(self.trajectory[pick], self.index[pick])
 
 
-def choose_starts(n_times: int, n_trajectories: int, n_before: int, n_after: int, n_starts: int) -> Starts:
+def choose_starts(n_times: int, n_trajectories: int, n_before: int, n_after: int, n_starts: int,
+                  what: str = "test set", fix: str = "shorten assess.horizon or warm_up, or use longer test trajectories.") -> Starts:
     """``n_starts`` start samples, evenly spaced along the concatenated test trajectories.
 
     A start ``s`` needs ``n_before`` samples of history before it and ``n_after``
@@ -63,9 +64,8 @@ def choose_starts(n_times: int, n_trajectories: int, n_before: int, n_after: int
     """
     per_traj = n_times - n_before - n_after
     if per_traj <= 0:
-        raise DataError("test set", f"trajectories of {n_times} samples are too short for a warm-up of "
-                        f"{n_before} samples plus a forecast of {n_after} samples",
-                        "shorten assess.horizon or warm_up, or use longer test trajectories.")
+        raise DataError(what, f"trajectories of {n_times} samples are too short for a warm-up of "
+                        f"{n_before} samples plus a forecast of {n_after} samples", fix)
     total = per_traj * n_trajectories
     n = min(int(n_starts), total)
     pos = np.floor((np.arange(n) + 0.5) * total / n).astype(int)

@@ -60,10 +60,22 @@ class Closure(nn.Module):
 
     hidden_size: int = 0
     discrete: bool = False
+    forcing_dim: int = 0  # forcing inputs u the closure sees beside x (0: it ignores u)
 
     def __init__(self, dim: int):
         super().__init__()
         self.dim = int(dim)
+
+    def normalised_inputs(self, x: torch.Tensor, u: torch.Tensor | None = None) -> torch.Tensor:
+        """``x̃``: the scaled closure inputs, of ``[x, u]`` when the closure sees forcing."""
+        if self.forcing_dim == 0:
+            return self.scaling.inputs(x)
+        if u is None:
+            from ..errors import ConfigError
+
+            raise ConfigError(f"{type(self).__name__}(forcing_dim={self.forcing_dim})",
+                              "was called without forcing inputs u", "set the model's forcing or forcing_dim=0.")
+        return self.scaling.inputs(torch.cat((x, u.expand(*x.shape[:-1], u.shape[-1]).to(x.dtype)), dim=-1))
 
     def correction(self, x: torch.Tensor, r: torch.Tensor | None = None,
                    u: torch.Tensor | None = None) -> torch.Tensor:

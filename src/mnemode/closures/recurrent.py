@@ -216,20 +216,10 @@ class RecurrentClosure(Closure):
         if initial_hidden == "learned":
             self.r0 = nn.Parameter(torch.zeros(H, dtype=dtype))
 
-    # -- inputs -------------------------------------------------------------------
-    def _inputs(self, x, u):
-        """Normalised closure inputs ``x̃`` (of ``[x, u]`` when the closure sees forcing)."""
-        if self.forcing_dim == 0:
-            return self.scaling.inputs(x)
-        if u is None:
-            raise ConfigError(f"{type(self).__name__}(forcing_dim={self.forcing_dim})",
-                              "was called without forcing inputs u", "set the model's forcing or forcing_dim=0.")
-        return self.scaling.inputs(torch.cat((x, u.expand(*x.shape[:-1], u.shape[-1]).to(x.dtype)), dim=-1))
-
     # -- the contract -------------------------------------------------------------
     def hidden_field(self, x, r, u=None):
         """``dr/dt`` for the chosen form (module docstring)."""
-        z = self._inputs(x, u)
+        z = self.normalised_inputs(x, u)
         if self.form == "leaky":
             own = r @ self.A_rel.T if self.coupling else -r * torch.exp(self.log_rate)
             return (own + z @ self.B_rel.T + self.b_rel) * self.rate
@@ -244,7 +234,7 @@ class RecurrentClosure(Closure):
         if r is None:
             raise ConfigError(type(self).__name__, "needs its hidden state r, got None",
                               "simulate it inside a HybridField, which carries r.")
-        z = self._inputs(x, u)
+        z = self.normalised_inputs(x, u)
         if self.readout == "linear":
             y = r @ self.C.T + z @ self.D.T + self.c
         else:
@@ -280,7 +270,7 @@ class RecurrentClosure(Closure):
 
     def readout_features(self, x, r, u=None) -> torch.Tensor:
         """Features ``[r, x̃(, u), 1]`` in which the linear readout is linear."""
-        z = self._inputs(x, u)
+        z = self.normalised_inputs(x, u)
         one = torch.ones((*z.shape[:-1], 1), dtype=z.dtype, device=z.device)
         return torch.cat((r, z, one), dim=-1)
 

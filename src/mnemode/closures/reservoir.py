@@ -113,18 +113,9 @@ class ReservoirClosure(Closure):
         n = self.in_dim + self.hidden_size
         return n + (n * (n + 1) // 2 if self.quadratic else 0) + 1
 
-    def _inputs(self, x, u):
-        """Normalised closure inputs ``x̃`` (of ``[x, u]`` when the closure sees forcing)."""
-        if self.forcing_dim == 0:
-            return self.scaling.inputs(x)
-        if u is None:
-            raise ConfigError(f"{type(self).__name__}(forcing_dim={self.forcing_dim})",
-                              "was called without forcing inputs u", "set the model's forcing or forcing_dim=0.")
-        return self.scaling.inputs(torch.cat((x, u.expand(*x.shape[:-1], u.shape[-1]).to(x.dtype)), dim=-1))
-
     def hidden_field(self, x, r, u=None):
         """``dr/dt`` of the fixed reservoir (module docstring)."""
-        z = self._inputs(x, u)
+        z = self.normalised_inputs(x, u)
         if self.kind == "filter_bank":
             return (z[..., self.input_index] - r) * self.inv_tau
         return (torch.tanh(r @ self.W.T + z @ self.U.T + self.bias) - r) * self.inv_tau
@@ -134,7 +125,7 @@ class ReservoirClosure(Closure):
 
     def readout_features(self, x, r, u=None) -> torch.Tensor:
         """Features ``φ = [x̃(, u), r, (pairwise products), 1]``."""
-        z = self._inputs(x, u)
+        z = self.normalised_inputs(x, u)
         base = torch.cat((z, r.expand(*z.shape[:-1], r.shape[-1])), dim=-1)
         parts = [base]
         if self.quadratic:

@@ -53,7 +53,7 @@ from typing import Sequence
 import numpy as np
 import torch
 
-from ..assess.forecasts import model_dtype
+from ..assess.forecasts import choose_starts, model_dtype
 from ..assess.metrics import validity_times
 from ..data import TrajectorySet, take_windows
 from ..errors import CheckpointError, ConfigError, DataError, FitDiverged
@@ -254,15 +254,9 @@ class TrajectoryFit:
     # -- validation -----------------------------------------------------------------
     @staticmethod
     def _val_starts(n_traj: int, n_times: int, n_before: int, n_after: int, n: int):
-        per = n_times - n_before - n_after
-        if per <= 0:
-            raise DataError("validation data", f"trajectories of {n_times} samples are too short for a warm-up of "
-                            f"{n_before} plus a validation forecast of {n_after} samples",
-                            "shorten fit.val_horizon or warm_up, or use longer validation trajectories.")
-        total = per * n_traj
-        n = min(n, total)
-        pos = np.floor((np.arange(n) + 0.5) * total / n).astype(int)
-        return torch.as_tensor(pos // per), torch.as_tensor(pos % per)
+        starts = choose_starts(n_times, n_traj, n_before, n_after, n, what="validation data",
+                               fix="shorten fit.val_horizon or warm_up, or use longer validation trajectories.")
+        return torch.as_tensor(starts.trajectory), torch.as_tensor(starts.index - n_before)
 
     def _validate(self, model, v) -> tuple[float, float, float]:
         """(median validity, mean validity, normalised squared error over the final horizon)."""
