@@ -165,3 +165,42 @@ def test_diagnose_recommends_memory_on_the_memory_regime(tmp_path):
     r = mnemode("diagnose", "experiment=tiny", "progress=false", cwd=tmp_path)
     assert r.returncode == 0, r.stderr[-3000:]
     assert "recommendation: memory ->" in r.stdout
+
+
+def test_forcing_inputs_reach_physics_and_closure_through_the_main_job(tmp_path):
+    example = ROOT / "scripts" / "own_physics_example"
+    sys.path.insert(0, str(example))
+    try:
+        from circuit_physics import DrivenCircuitWithHeatingResistor
+    finally:
+        sys.path.remove(str(example))
+    from mnemode.data import generate
+    from mnemode.solvers import RK4
+    from mnemode.systems import System
+
+    rig = DrivenCircuitWithHeatingResistor()
+    lab = System(name="driven_lab", state_names=("v", "i"), state_units=("V", "A"), time_unit="s",
+                 nominal=rig.nominal, truth=rig, observed_index=(0, 1), spin_up=20.0,
+                 initial_mean=(0.0, 0.0, 0.5), initial_scale=(2.0, 2.0, 0.2))
+    data = generate(lab, n_trajectories=5, duration=30.0, dt=0.05, solver=RK4(0.01), seed=1)
+    # the drive the rig applied, on the generator's absolute clock (spin-up first)
+    u = rig.drive(torch.as_tensor(data.times) + 20.0).numpy()
+    data.forcing = np.repeat(u[:, None, None], 5, axis=1)
+    data.forcing_names, data.hidden = ("drive",), None
+    csv = data.save(tmp_path / "driven.csv")
+    r = mnemode("run", "system=custom", "system.nominal._target_=circuit_physics.DrivenVanDerPolCircuit",
+                "system.state_names=[v,i]", "data=file", f"data.path={csv}", "data.forcing_columns=[drive]",
+                "closure=random_features", "fit=derivative", "baselines=none", "model.name=memoryless",
+                "warm_up=0", "assess.n_starts=10", "assess.horizon=20", "assess.free_run_length=20",
+                "assess.acf_max_lag=1", "progress=false", "solver.step=0.05",
+                cwd=tmp_path, env_extra={"PYTHONPATH": str(example)})
+    assert r.returncode == 0, r.stderr[-3000:]
+    run = run_dir_from(r.stdout)
+    status = json.loads((run / "status.json").read_text())
+    assert status["stages"]["export"] == "skipped: forced model"
+    metrics = json.loads((run / "metrics.json").read_text())
+    # the rig is not chaotic: the corrected model should track it longer than the uncorrected one
+    assert metrics["models"]["memoryless"]["validity_time_median"] > metrics["models"]["physics_only"]["validity_time_median"]
+    # the closure was built with the forcing among its inputs
+    state = torch.load(run / "models" / "memoryless.pt", weights_only=True)["state_dict"]
+    assert state["closure.scaling.in_mean"].shape == (3,)

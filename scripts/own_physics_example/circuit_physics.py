@@ -49,3 +49,28 @@ class CircuitWithHeatingResistor(nn.Module):
         di = d[..., 1] - self.k * theta * i
         dtheta = (self.heating * i**2 - theta) / self.thermal_time
         return torch.stack((d[..., 0], di, dtheta), dim=-1)
+
+
+class DrivenVanDerPolCircuit(VanDerPolCircuit):
+    """Nominal model with a known drive voltage u(t) (a forcing input): di/dt gains + u."""
+
+    def forward(self, t, x, u=None):
+        d = super().forward(t, x)
+        if u is None:
+            return d
+        return torch.stack((d[..., 0], d[..., 1] + u[..., 0]), dim=-1)
+
+
+class DrivenCircuitWithHeatingResistor(CircuitWithHeatingResistor):
+    """The real circuit driven by u(t) = amplitude·cos(ω t) (ω in rad per time unit)."""
+
+    def __init__(self, amplitude: float = 0.8, omega: float = 1.3, **kwargs):
+        super().__init__(**kwargs)
+        self.amplitude, self.omega = float(amplitude), float(omega)
+
+    def drive(self, t):
+        return self.amplitude * torch.cos(self.omega * torch.as_tensor(t, dtype=torch.float64))
+
+    def forward(self, t, z, u=None):
+        d = super().forward(t, z)
+        return torch.stack((d[..., 0], d[..., 1] + self.drive(t).to(z.dtype), d[..., 2]), dim=-1)

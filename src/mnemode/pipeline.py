@@ -8,6 +8,7 @@ hand and call the stage libraries directly.
 from __future__ import annotations
 
 import hashlib
+import inspect
 import json
 import logging
 import time
@@ -88,6 +89,10 @@ class DataSplits:
     def dt(self) -> float:
         return self.train.dt
 
+    @property
+    def n_forcing(self) -> int:
+        return 0 if self.train.forcing is None else int(self.train.forcing.shape[-1])
+
 
 def _data_key(cfg: DictConfig) -> str:
     spec = {
@@ -163,10 +168,38 @@ def model_specs(cfg: DictConfig) -> dict[str, DictConfig]:
     return specs
 
 
+def _closure_kwargs(spec: DictConfig, system: System, n_forcing: int, what: str) -> dict:
+    """Constructor arguments the run supplies: ``dim``, and the forcing inputs if the data have them."""
+    kwargs = {"dim": system.dim}
+    if not n_forcing:
+        return kwargs
+    from hydra.utils import get_method
+
+    try:
+        params = inspect.signature(get_method(spec.closure._target_)).parameters
+    except Exception:  # an unresolvable target is reported by _instantiate
+        return kwargs
+    if "forcing_dim" in params:
+        kwargs["forcing_dim"] = n_forcing
+    elif "in_dim" in params:
+        kwargs["in_dim"] = system.dim + n_forcing
+    else:
+        raise ConfigError(what, f"{spec.closure._target_} cannot take the data's {n_forcing} forcing input(s)",
+                          "choose a closure that accepts forcing (random_features, mlp, gaussian_process, "
+                          "leaky_memory, filter_bank) or drop data.forcing_columns.")
+    return kwargs
+
+
 def build_model(spec: DictConfig, system: System, dt: float, dtype=torch.float64,
-                what: str = "closure") -> HybridField | HybridFlowMap:
-    """An unfitted hybrid model from a model spec (``form``, ``physics``, ``closure``)."""
-    closure = _instantiate(spec.closure, what, dim=system.dim) if spec.get("closure") is not None else None
+                what: str = "closure", n_forcing: int = 0) -> HybridField | HybridFlowMap:
+    """An unfitted hybrid model from a model spec (``form``, ``physics``, ``closure``).
+
+    ``n_forcing`` forcing inputs (from the data) are passed to the physics as ``u``
+    and appended to the closure's inputs.
+    """
+    closure = None
+    if spec.get("closure") is not None:
+        closure = _instantiate(spec.closure, what, **_closure_kwargs(spec, system, n_forcing, what))
     physics = system.nominal if spec.get("physics", True) else None
     form = spec.get("form", "continuous")
     if form == "continuous":
@@ -203,7 +236,7 @@ def save_model(path: Path, model, name: str, diagnostics: dict) -> None:
         torch.save(payload, tmp)
 
 
-def load_model(run: RunDir, name: str, cfg: DictConfig, system: System, dt: float):
+def load_model(run: RunDir, name: str, cfg: DictConfig, system: System, dt: float, n_forcing: int = 0):
     """Rebuild model ``name`` from the run's config, then load its tensors."""
     path = run.model_path(name)
     if not path.exists():
@@ -215,7 +248,7 @@ def load_model(run: RunDir, name: str, cfg: DictConfig, system: System, dt: floa
         raise CheckpointError(str(path), f"cannot be read as a mnemode model ({exc.__class__.__name__})",
                               "the file is corrupt or truncated; refit the model.") from None
     spec = model_specs(cfg)[name]
-    model = build_model(spec, system, dt, dtype_of(cfg), what=f"{name}.closure")
+    model = build_model(spec, system, dt, dtype_of(cfg), what=f"{name}.closure", n_forcing=n_forcing)
     own = model.state_dict()
     saved = payload.get("state_dict", {})
     for key, value in own.items():
@@ -257,7 +290,7 @@ def fit_models(cfg: DictConfig, run: RunDir, system: System, data: DataSplits, *
             log.info("%s: already fitted, skipped", name)
             results[name] = run.metrics().get("fit", {}).get(name, {})
             continue
-        model = build_model(spec, system, data.dt, dtype, what=f"{name}.closure")
+        model = build_model(spec, system, data.dt, dtype, what=f"{name}.closure", n_forcing=data.n_forcing)
         fitter = _instantiate(spec.fit, f"{name}.fit")
         torch.manual_seed(int(cfg.seed))
         start_step = None
@@ -307,7 +340,7 @@ def assess_run(run: RunDir, cfg: DictConfig | None = None, system: System | None
     solver = make_solver(cfg)
     models = {}
     for name in model_specs(cfg):
-        model, _ = load_model(run, name, cfg, system, data.dt)
+        model, _ = load_model(run, name, cfg, system, data.dt, data.n_forcing)
         models[name] = ModelEntry(model, None if isinstance(model, HybridFlowMap) else solver)
     a = cfg.assess
     settings = AssessSettings(gamma=float(a.gamma), warm_up=float(cfg.warm_up), horizon=float(a.horizon),
@@ -358,7 +391,11 @@ def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | Non
     check_exportable(path, fit_diag)
     system = system or make_system(cfg)
     data = data or prepare_data(cfg, system, progress=False)
-    model, diagnostics = load_model(run, name, cfg, system, data.dt)
+    if data.n_forcing:
+        raise ConfigError(f"export of {name!r}", f"the run's data have forcing inputs {list(data.train.forcing_names)}, "
+                          "and exported simulators are autonomous (state in, state out) in this version",
+                          "embed the model through the Python API (mnemode.pipeline.load_model) instead.")
+    model, diagnostics = load_model(run, name, cfg, system, data.dt, data.n_forcing)
     assessment = run.metrics().get("assessment", {}).get("models", {}).get(name)
     steps = int(round(float(cfg.warm_up) / data.dt))
     log.info("exporting %s as a frozen simulator", name)
@@ -399,7 +436,12 @@ def run_pipeline(cfg: DictConfig, run_dir: str | Path, *, resume: bool = False, 
             fit_models(cfg, run, system, data, resume=resume, only=only)
         if "assess" in stages and cfg.assess.enabled and not (resume and run.stage_done("assess")):
             assess_run(run, cfg, system, data)
-        if "export" in stages and cfg.export.enabled and not (resume and run.stage_done("export")):
+        if "export" in stages and cfg.export.enabled and data.n_forcing:
+            # the exported step map takes the state only; a forced model needs u(t) inside the step
+            log.warning("export skipped: the data have forcing inputs %s, and exported simulators "
+                        "are autonomous in this version", list(data.train.forcing_names))
+            run.mark("export", "skipped: forced model")
+        elif "export" in stages and cfg.export.enabled and not (resume and run.stage_done("export")):
             # a resumed run may have died half-way through writing the export: replace it
             export_run(run, cfg, system=system, data=data, overwrite=resume)
     except BaseException as exc:
