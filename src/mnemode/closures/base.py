@@ -77,6 +77,29 @@ class Closure(nn.Module):
                               "was called without forcing inputs u", "set the model's forcing or forcing_dim=0.")
         return self.scaling.inputs(torch.cat((x, u.expand(*x.shape[:-1], u.shape[-1]).to(x.dtype)), dim=-1))
 
+    @staticmethod
+    def _join(x: torch.Tensor, u: torch.Tensor | None) -> torch.Tensor:
+        """``[x, u]`` when forcing is given (memoryless closures take ``in_dim = dim + U`` inputs)."""
+        return x if u is None else torch.cat((x, u.to(x.dtype)), dim=-1)
+
+    def normalised_regression_data(self, inputs, targets, what: str):
+        """Check regression data ``(N, in_dim)``/``(N, dim)`` and scale it: float64 ``(x̃, ỹ)``.
+
+        Raises:
+            DataError: shapes that do not match the closure.
+        """
+        from ..errors import DataError
+
+        x = torch.as_tensor(inputs).to(torch.float64)
+        y = torch.as_tensor(targets).to(torch.float64)
+        in_dim = getattr(self, "in_dim", self.dim)
+        if x.ndim != 2 or x.shape[1] != in_dim or y.ndim != 2 or y.shape[1] != self.dim \
+                or x.shape[0] != y.shape[0] or x.shape[0] == 0:
+            raise DataError(what, f"inputs {tuple(x.shape)} and targets {tuple(y.shape)}; expected "
+                            f"(N, {in_dim}) and (N, {self.dim}) with N ≥ 1", "check the closure's dim and in_dim.")
+        s = self.scaling
+        return (x - s.in_mean.double()) / s.in_std.double(), (y - s.out_offset.double()) / s.out_scale.double()
+
     def correction(self, x: torch.Tensor, r: torch.Tensor | None = None,
                    u: torch.Tensor | None = None) -> torch.Tensor:
         raise NotImplementedError

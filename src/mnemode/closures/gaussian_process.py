@@ -293,9 +293,6 @@ class GaussianProcessClosure(Closure):
             self.log_noise.copy_(log_noise)
 
     # -- evaluation -------------------------------------------------------------
-    def _join(self, x: torch.Tensor, u: torch.Tensor | None) -> torch.Tensor:
-        return x if u is None else torch.cat((x, u.to(x.dtype)), dim=-1)
-
     def correction(self, x: torch.Tensor, r: torch.Tensor | None = None,
                    u: torch.Tensor | None = None) -> torch.Tensor:
         """Predictive mean ``m(x[, u])``, ``(..., dim)`` in physical units (the input's dtype)."""

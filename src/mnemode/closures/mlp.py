@@ -24,7 +24,7 @@ import time
 import torch
 from torch import nn
 
-from ..errors import ConfigError, DataError, FitDiverged
+from ..errors import ConfigError, FitDiverged
 from .base import Closure, Scaling
 
 __all__ = ["MLPClosure", "ACTIVATIONS"]
@@ -92,26 +92,10 @@ class MLPClosure(Closure):
                     layer.bias.uniform_(-bound, bound, generator=gen)
             self.net[-1].bias.zero_()
 
-    def _join(self, x: torch.Tensor, u: torch.Tensor | None) -> torch.Tensor:
-        return x if u is None else torch.cat((x, u.to(x.dtype)), dim=-1)
-
     def correction(self, x: torch.Tensor, r: torch.Tensor | None = None,
                    u: torch.Tensor | None = None) -> torch.Tensor:
         """``m(x[, u]) = out_offset + out_scale · net(x̃)``, ``(..., dim)``."""
         return self.scaling.outputs(self.net(self.scaling.inputs(self._join(x, u))))
-
-    def _normalised(self, inputs, targets, dtype):
-        x = torch.as_tensor(inputs)
-        y = torch.as_tensor(targets)
-        if x.ndim != 2 or x.shape[1] != self.in_dim or y.ndim != 2 or y.shape[1] != self.dim \
-                or x.shape[0] != y.shape[0] or x.shape[0] == 0:
-            raise DataError("MLP regression data", f"inputs {tuple(x.shape)} and targets {tuple(y.shape)}; "
-                            f"expected (N, {self.in_dim}) and (N, {self.dim}) with N ≥ 1",
-                            "check the closure's dim and in_dim.")
-        s = self.scaling
-        xt = (x.to(torch.float64) - s.in_mean.double()) / s.in_std.double()
-        yt = (y.to(torch.float64) - s.out_offset.double()) / s.out_scale.double()
-        return xt.to(dtype), yt.to(dtype)
 
     def fit_regression(self, inputs: torch.Tensor, targets: torch.Tensor, generator: torch.Generator | None = None,
                        val_inputs: torch.Tensor | None = None, val_targets: torch.Tensor | None = None,
@@ -131,10 +115,11 @@ class MLPClosure(Closure):
             FitDiverged: a non-finite loss.
         """
         dtype = self.net[-1].weight.dtype
-        xt, yt = self._normalised(inputs, targets, dtype)
+        xt, yt = (t.to(dtype) for t in self.normalised_regression_data(inputs, targets, "MLP regression data"))
         has_val = val_inputs is not None and val_targets is not None
         if has_val:
-            vx, vy = self._normalised(val_inputs, val_targets, dtype)
+            vx, vy = (t.to(dtype) for t in self.normalised_regression_data(val_inputs, val_targets,
+                                                                           "MLP validation data"))
         # Initial weights follow the closure's own seed; the minibatch order the fit's generator.
         self._initialise(torch.Generator().manual_seed(self.seed))
         gen = generator if generator is not None else torch.Generator().manual_seed(self.seed + 1)

@@ -32,7 +32,7 @@ from typing import Sequence
 import torch
 from torch import nn
 
-from ..errors import ConfigError, DataError, FitDiverged
+from ..errors import ConfigError, FitDiverged
 from .base import Closure, Scaling
 
 __all__ = ["RandomFeatureClosure"]
@@ -101,27 +101,11 @@ class RandomFeatureClosure(Closure):
         phi = math.sqrt(2.0 / self.n_features) * torch.cos(proj)
         return torch.cat((phi, torch.ones_like(phi[..., :1])), dim=-1)
 
-    def _join(self, x: torch.Tensor, u: torch.Tensor | None) -> torch.Tensor:
-        return x if u is None else torch.cat((x, u.to(x.dtype)), dim=-1)
-
     def correction(self, x: torch.Tensor, r: torch.Tensor | None = None,
                    u: torch.Tensor | None = None) -> torch.Tensor:
         """``m(x[, u]) = out_offset + out_scale · φ(x̃)ᵀ A``, ``(..., dim)``."""
         phi = self.features(self.scaling.inputs(self._join(x, u)))
         return self.scaling.outputs(phi @ self.readout.to(phi.dtype))
-
-    def _normalised(self, inputs, targets):
-        x = torch.as_tensor(inputs).to(torch.float64)
-        y = torch.as_tensor(targets).to(torch.float64)
-        if x.ndim != 2 or x.shape[1] != self.in_dim or y.ndim != 2 or y.shape[1] != self.dim \
-                or x.shape[0] != y.shape[0] or x.shape[0] == 0:
-            raise DataError("random-feature regression data", f"inputs {tuple(x.shape)} and targets "
-                            f"{tuple(y.shape)}; expected (N, {self.in_dim}) and (N, {self.dim}) with N ≥ 1",
-                            "check the closure's dim and in_dim.")
-        s = self.scaling
-        xt = (x - s.in_mean.double()) / s.in_std.double()
-        yt = (y - s.out_offset.double()) / s.out_scale.double()
-        return xt, yt
 
     def _solve(self, xt, yt, ell, ridge):
         # Imported here: mnemode.fitting imports the hybrid models, which import closures.
@@ -149,13 +133,13 @@ class RandomFeatureClosure(Closure):
             FitDiverged: the readout is not finite.
         """
         del progress
-        xt, yt = self._normalised(inputs, targets)
+        xt, yt = self.normalised_regression_data(inputs, targets, "random-feature regression data")
         grid = [(ell, lam) for ell in self.lengthscale_grid for lam in self.ridge_grid]
         chosen, sel_err = grid[0], math.nan
         if len(grid) > 1:
             if val_inputs is not None and val_targets is not None:
                 fit_x, fit_y = xt, yt
-                vx, vy = self._normalised(val_inputs, val_targets)
+                vx, vy = self.normalised_regression_data(val_inputs, val_targets, "random-feature validation data")
             else:
                 gen = generator if generator is not None else torch.Generator().manual_seed(self.seed)
                 perm = torch.randperm(xt.shape[0], generator=gen)
