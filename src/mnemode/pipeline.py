@@ -155,16 +155,19 @@ def prepare_data(cfg: DictConfig, system: System, *, progress: bool = False) -> 
 
 def model_specs(cfg: DictConfig) -> dict[str, DictConfig]:
     """Every model the run fits: the main one first, then the baselines."""
+    def resolved(node):  # detached from the root, so interpolations (e.g. ${data.dt}) are resolved first
+        return None if node is None else OmegaConf.to_container(node, resolve=True)
+
     main = OmegaConf.create({
         "form": cfg.model.form, "physics": cfg.model.physics,
-        "closure": cfg.closure, "fit": cfg.fit,
+        "closure": resolved(cfg.closure), "fit": resolved(cfg.fit),
     })
     specs = {str(cfg.model.name): main}
     for name, spec in (cfg.get("baselines") or {}).items():
         if name in specs:
             raise ConfigError(f"baselines.{name}", "has the same name as the main model",
                               "rename the main model (model.name=...) or the baseline.")
-        specs[str(name)] = spec
+        specs[str(name)] = OmegaConf.create(resolved(spec))
     return specs
 
 
@@ -199,7 +202,12 @@ def build_model(spec: DictConfig, system: System, dt: float, dtype=torch.float64
     """
     closure = None
     if spec.get("closure") is not None:
-        closure = _instantiate(spec.closure, what, **_closure_kwargs(spec, system, n_forcing, what))
+        previous = torch.get_default_dtype()
+        torch.set_default_dtype(dtype)  # closures derive constants at construction: keep full precision
+        try:
+            closure = _instantiate(spec.closure, what, **_closure_kwargs(spec, system, n_forcing, what))
+        finally:
+            torch.set_default_dtype(previous)
     physics = system.nominal if spec.get("physics", True) else None
     form = spec.get("form", "continuous")
     if form == "continuous":

@@ -19,6 +19,14 @@ backpropagation). Two kinds:
   Gaussian times ``input_scale``, ``b`` Gaussian times ``bias_scale``, ``τ_i``
   log-spaced over ``time_constants``.
 
+With ``interval`` set (the observation interval Δt) the closure is *discrete*
+(``discrete = True``), for the flow-map form ``x_{n+1} = Ψ0(x_n) + Δt·m(x_n, r_n)``
+at coarse sampling: the hidden state is advanced over one interval by the exact
+solution of the same field with the input held at ``x̃_n`` (zero-order hold)::
+
+    r_{n+1} = r_n + (target_n − r_n)(1 − e^{−Δt/τ}),
+    target_n = x̃_n (filter bank)  or  tanh(W r_n + U x̃_n + b) (random)
+
 Readout, linear in the features ``φ = [x̃, r, (products of [x̃, r]), 1]``::
 
     m = out_offset + out_scale ⊙ (φ W_out)
@@ -62,14 +70,21 @@ class ReservoirClosure(Closure):
             or a list of them from which the fit picks the best on validation data.
         forcing_dim: forcing inputs the closure sees (0: ignores ``u``).
         seed: seeds the random weights.
+        interval: ``None`` for a continuous hidden field (``dr/dt``); the observation
+            interval Δt for a discrete closure on the flow map (``r_{n+1}``).
     """
 
     def __init__(self, dim: int, hidden_size: int | None = None, kind: str = "filter_bank",
                  time_constants=(0.1, 10.0), spectral_radius: float = 0.9, input_scale: float = 1.0,
                  bias_scale: float = 0.0, quadratic: bool = False, ridge=(1e-8, 1e-6, 1e-4),
-                 forcing_dim: int = 0, seed: int = 0):
+                 forcing_dim: int = 0, seed: int = 0, interval: float | None = None):
         super().__init__(dim)
         _check_choice("kind", kind, _KINDS)
+        if interval is not None and not float(interval) > 0:
+            raise ConfigError("interval", f"is {interval}; expected the observation interval Δt > 0 (or null for "
+                              "a continuous hidden field)", "set interval: ${data.dt} or leave it null.")
+        self.interval = None if interval is None else float(interval)
+        self.discrete = self.interval is not None
         self.kind, self.forcing_dim, self.seed = kind, int(forcing_dim), int(seed)
         self.time_constants = _init_bounds("time_constants", time_constants)
         self.spectral_radius, self.input_scale = float(spectral_radius), float(input_scale)
@@ -105,7 +120,11 @@ class ReservoirClosure(Closure):
             self.register_buffer("U", U.to(dtype))
             self.register_buffer("bias", (torch.randn(H, generator=gen, dtype=torch.float64)
                                           * self.bias_scale).to(dtype))
+        taus = taus.to(torch.float64)  # derived rates in float64, then stored in the module's dtype
         self.register_buffer("inv_tau", (1.0 / taus).to(dtype))
+        if self.discrete:
+            # fraction of the way to the held target covered in one interval: 1 − e^{−Δt/τ}
+            self.register_buffer("blend", (-torch.expm1(-self.interval / taus)).to(dtype))
         self.n_features = self._feature_count()
         self.readout_weight = nn.Parameter(torch.zeros(self.n_features, self.dim, dtype=dtype))
 
@@ -114,11 +133,15 @@ class ReservoirClosure(Closure):
         return n + (n * (n + 1) // 2 if self.quadratic else 0) + 1
 
     def hidden_field(self, x, r, u=None):
-        """``dr/dt`` of the fixed reservoir (module docstring)."""
+        """``dr/dt`` of the fixed reservoir, or ``r_{n+1}`` when discrete (module docstring)."""
         z = self.normalised_inputs(x, u)
         if self.kind == "filter_bank":
-            return (z[..., self.input_index] - r) * self.inv_tau
-        return (torch.tanh(r @ self.W.T + z @ self.U.T + self.bias) - r) * self.inv_tau
+            target = z[..., self.input_index]
+        else:
+            target = torch.tanh(r @ self.W.T + z @ self.U.T + self.bias)
+        if self.discrete:
+            return r + (target - r) * self.blend
+        return (target - r) * self.inv_tau
 
     # -- readout ----------------------------------------------------------------
     has_linear_readout = True
