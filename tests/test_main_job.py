@@ -128,6 +128,15 @@ def test_killed_run_resumes_and_finishes(tmp_path):
     fit = json.loads((run / "metrics.json").read_text())["fit"]["memory"]
     assert fit["resumed_from"] is not None and fit["resumed_from"] > 0
     assert fit["steps"] == 200
+    # TensorBoard: the resumed fit continues the same curve; events the killed run wrote after
+    # its checkpoint are purged, so every step appears once (read back with all points kept)
+    from tensorboard.backend.event_processing.event_accumulator import EventAccumulator
+
+    events = EventAccumulator(str(run / "tb"), size_guidance={"scalars": 0})
+    events.Reload()
+    tag = next(t for t in events.Tags()["scalars"] if t.endswith("train/loss"))
+    steps = [e.step for e in events.Scalars(tag)]
+    assert len(steps) == len(set(steps)) and max(steps) == 199 and min(steps) == 0
 
 
 def test_bring_your_own_physics_example_runs_end_to_end(tmp_path):

@@ -21,6 +21,7 @@ from omegaconf import DictConfig, OmegaConf
 
 from .data import TrajectorySet, generate, load_trajectories
 from .errors import CheckpointError, ConfigError, MnemodeError
+from .fitting.checkpoint import checkpoint_step
 from .fitting.context import FitContext
 from .hybrid import HybridField, HybridFlowMap
 from .rundir import RunDir
@@ -301,12 +302,8 @@ def fit_models(cfg: DictConfig, run: RunDir, system: System, data: DataSplits, *
         model = build_model(spec, system, data.dt, dtype, what=f"{name}.closure", n_forcing=data.n_forcing)
         fitter = _instantiate(spec.fit, f"{name}.fit")
         torch.manual_seed(int(cfg.seed))
-        start_step = None
-        try:
-            from .fitting.checkpoint import checkpoint_step
-            start_step = checkpoint_step(run.checkpoint_dir(name)) if resume else None
-        except ImportError:  # fitters without checkpoints
-            start_step = None
+        # a resumed fit continues its TensorBoard curves from the checkpointed step
+        start_step = checkpoint_step(run.checkpoint_dir(name)) if resume else None
         writer = _writer(run, purge_step=start_step)
         ctx = FitContext(solver=solver, warm_up=float(cfg.warm_up), lyapunov_time=(1.0 / lyap) if lyap else None,
                          writer=writer, checkpoint_dir=run.checkpoint_dir(name), resume=resume,
