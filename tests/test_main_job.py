@@ -73,7 +73,13 @@ def test_run_leaves_a_complete_run_directory(tiny_run):
 def test_reassess_never_refits(tiny_run):
     cwd, run, _ = tiny_run
     before = {p: p.stat().st_mtime_ns for p in (run / "models").glob("*.pt")}
+    # the run directory alone suffices: the shared data cache is not needed
+    cache = cwd / "runs" / "data-cache"
+    cache.rename(cwd / "moved-cache")
     r = mnemode("assess", str(run), cwd=cwd)
+    (cwd / "moved-cache").rename(cache)
+    assert sorted(p.name for p in (run / "data").iterdir()) == [
+        "test.npz", "train.npz", "val.npz"]
     assert r.returncode == 0, r.stderr[-3000:]
     assert {p: p.stat().st_mtime_ns for p in (run / "models").glob("*.pt")} == before
     assert "| memory |" in r.stdout

@@ -152,6 +152,26 @@ def prepare_data(cfg: DictConfig, system: System, *, progress: bool = False) -> 
                       "choose data=generated or data=file.")
 
 
+_SPLITS = ("train", "val", "test")
+
+
+def save_run_data(run: RunDir, data: DataSplits) -> None:
+    """Keep the run's own copy of its data splits, so the run directory alone suffices later."""
+    for split in _SPLITS:
+        path = run.path / "data" / f"{split}.npz"
+        if not path.exists():
+            getattr(data, split).save(path)
+
+
+def run_data(run: RunDir, cfg: DictConfig, system: System) -> DataSplits:
+    """The data a run was fitted on: its own copy if present, else rebuilt from the config."""
+    paths = [run.path / "data" / f"{split}.npz" for split in _SPLITS]
+    if all(p.exists() for p in paths):
+        train, val, test = (load_trajectories(p, expected_dim=system.dim) for p in paths)
+        return DataSplits(train, val, test, str(run.path / "data"))
+    return prepare_data(cfg, system, progress=bool(cfg.progress))
+
+
 # -- models ------------------------------------------------------------------------
 
 def model_specs(cfg: DictConfig) -> dict[str, DictConfig]:
@@ -341,7 +361,7 @@ def assess_run(run: RunDir, cfg: DictConfig | None = None, system: System | None
     from .assess.assessment import AssessSettings, ModelEntry, assess_models
 
     system = system or make_system(cfg)
-    data = data or prepare_data(cfg, system, progress=bool(cfg.progress))
+    data = data or run_data(run, cfg, system)
     solver = make_solver(cfg)
     models = {}
     for name in model_specs(cfg):
@@ -395,7 +415,7 @@ def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | Non
     fit_diag = run.metrics().get("fit", {}).get(name)
     check_exportable(path, fit_diag)
     system = system or make_system(cfg)
-    data = data or prepare_data(cfg, system, progress=False)
+    data = data or run_data(run, cfg, system)
     if data.n_forcing:
         raise ConfigError(f"export of {name!r}", f"the run's data have forcing inputs {list(data.train.forcing_names)}, "
                           "and exported simulators are autonomous (state in, state out) in this version",
@@ -430,7 +450,8 @@ def run_pipeline(cfg: DictConfig, run_dir: str | Path, *, resume: bool = False, 
         run.mark("data", "pending", stages_requested=list(stages))
     try:
         system = make_system(cfg)
-        data = prepare_data(cfg, system, progress=bool(cfg.progress))
+        data = run_data(run, cfg, system) if resume else prepare_data(cfg, system, progress=bool(cfg.progress))
+        save_run_data(run, data)
         run.update_metrics(data={
             "source": data.source, "dt": data.dt, "n_train": data.train.n_trajectories,
             "n_val": data.val.n_trajectories, "n_test": data.test.n_trajectories,
