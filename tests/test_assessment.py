@@ -177,7 +177,7 @@ def test_float32_model_and_missing_solver(l63):
 
 def test_ring_system_pools_identical_sites():
     torch.set_num_threads(1)
-    system = lorenz96(k=6, forcing=8.0, nominal_forcing=7.0, spin_up=5.0)
+    system = lorenz96(k=6, F=8.0, nominal_F=7.0, spin_up=5.0)
     test = generate(system, n_trajectories=2, duration=12.0, dt=0.05, seed=1, solver=RK4(0.01))
     res = assess_models({}, test, system, small_settings(n_starts=4, lyapunov_duration=10.0, free_run_length=8.0,
                                                          truth_step=0.01))

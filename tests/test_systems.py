@@ -135,7 +135,7 @@ def test_two_scale_field_matches_published_equations():
 
 def test_two_scale_system_nominal_and_bounded_truth_run():
     system = lorenz96_two_scale()  # published set K=36, J=10, F=10, h=1, b=c=10 (Lorenz 1996)
-    assert (system.truth.k, system.truth.j, system.truth.forcing) == (36, 10, 10.0)
+    assert (system.truth.k, system.truth.j, system.truth.F) == (36, 10, 10.0)
     assert (system.truth.h, system.truth.b, system.truth.c) == (1.0, 10.0, 10.0)
     assert system.dim == 36 and system.truth_dim == 396 and len(system.hidden_names) == 360
     X = _rng_states(36, seed=4, scale=3.0)

@@ -27,7 +27,7 @@ from torch import nn
 from .closures.base import Closure
 from .solvers import FlowMap, Solver
 
-__all__ = ["HybridField", "HybridFlowMap", "simulate", "warm_up", "Forcing"]
+__all__ = ["HybridField", "HybridFlowMap", "Forcing", "Driven", "simulate", "warm_up"]
 
 
 class Forcing:
@@ -35,6 +35,10 @@ class Forcing:
 
     def __init__(self, t0: float, dt: float, values: torch.Tensor):
         self.t0, self.dt, self.values = float(t0), float(dt), values
+
+    def shifted(self, steps: int) -> "Forcing":
+        """The same signal with its time origin moved ``steps`` samples later (values unchanged)."""
+        return Forcing(self.t0 + steps * self.dt, self.dt, self.values)
 
     def __call__(self, t) -> torch.Tensor:
         s = (torch.as_tensor(t, dtype=self.values.dtype) - self.t0) / self.dt
@@ -60,7 +64,6 @@ class HybridField(nn.Module):
         if closure is not None and closure.discrete:
             raise ValueError(f"{type(closure).__name__} is a discrete closure; use HybridFlowMap")
         self.physics, self.closure, self.dim = physics, closure, int(dim)
-        self.forcing: Callable | None = None  # set by callers for forced systems
 
     @property
     def hidden_size(self) -> int:
@@ -69,9 +72,9 @@ class HybridField(nn.Module):
     def split(self, state: torch.Tensor):
         return state[..., : self.dim], state[..., self.dim:]
 
-    def forward(self, t, state: torch.Tensor) -> torch.Tensor:
+    def forward(self, t, state: torch.Tensor, u: torch.Tensor | None = None) -> torch.Tensor:
+        """``d[x, r]/dt`` at time ``t``; ``u`` are the forcing inputs at ``t`` (``None``: unforced)."""
         x, r = self.split(state)
-        u = self.forcing(t) if self.forcing is not None else None
         dx = 0
         if self.physics is not None:
             dx = self.physics(t, x, u) if u is not None else self.physics(t, x)
@@ -82,6 +85,26 @@ class HybridField(nn.Module):
         if not self.hidden_size:
             return dx
         return torch.cat((dx, self.closure.hidden_field(x, r, u)), dim=-1)
+
+
+class Driven(nn.Module):
+    """A hybrid field bound to one forcing signal: ``f(t, s) = field(t, s, u(t))``.
+
+    Solvers integrate ``f(t, y)``; this is how an explicit forcing reaches the field
+    without the field itself carrying it. Built per call, never stored on a model.
+    """
+
+    def __init__(self, field: HybridField, forcing: Callable):
+        super().__init__()
+        self.field, self.forcing = field, forcing
+
+    def forward(self, t, state: torch.Tensor) -> torch.Tensor:
+        return self.field(t, state, self.forcing(t))
+
+
+def drive(field: HybridField, forcing: Callable | None) -> nn.Module:
+    """``field`` itself when unforced, else the field driven by ``forcing`` (see :class:`Driven`)."""
+    return field if forcing is None else Driven(field, forcing)
 
 
 class HybridFlowMap(nn.Module):
@@ -127,15 +150,18 @@ def _initial_state(model, x0: torch.Tensor, r0: torch.Tensor | None) -> torch.Te
 
 def simulate(model: HybridField | HybridFlowMap, x0: torch.Tensor, n_steps: int, dt: float,
              solver: Solver | None = None, r0: torch.Tensor | None = None, t0: float = 0.0,
-             return_hidden: bool = False):
+             return_hidden: bool = False, forcing: Callable | None = None):
     """Free-run a hybrid model for ``n_steps`` observation intervals of ``dt``.
 
     Returns observed states ``(n_steps + 1, *x0.shape)`` (and the hidden states if
     ``return_hidden``). A continuous model needs a ``solver``; a discrete one
-    ignores it (its ``dt`` is fixed by construction).
+    ignores it (its ``dt`` is fixed by construction). ``forcing`` is ``u(t)`` (a
+    :class:`Forcing`) for a forced continuous model, evaluated at the solver's times.
     """
     s0 = _initial_state(model, x0, r0)
     if isinstance(model, HybridFlowMap):
+        if forcing is not None:
+            raise ValueError("discrete hybrid models take no forcing inputs in this version")
         states = [s0]
         s = s0
         for _ in range(n_steps):
@@ -145,7 +171,7 @@ def simulate(model: HybridField | HybridFlowMap, x0: torch.Tensor, n_steps: int,
     else:
         if solver is None:
             raise ValueError("simulating a continuous hybrid model needs a solver")
-        traj = solver.unroll(model, s0, t0, dt, n_steps)
+        traj = solver.unroll(drive(model, forcing), s0, t0, dt, n_steps)
     x = traj[..., : model.dim]
     return (x, traj[..., model.dim:]) if return_hidden else x
 
@@ -166,13 +192,14 @@ class _ObservedDriving(nn.Module):
 
 def warm_up(model: HybridField | HybridFlowMap, history: torch.Tensor, dt: float,
             solver: Solver | None = None, r0: torch.Tensor | None = None, t0: float = 0.0,
-            grad_steps: int | None = None) -> torch.Tensor | None:
+            grad_steps: int | None = None, forcing: Callable | None = None) -> torch.Tensor | None:
     """Hidden state after being driven by observed ``history`` ``(T, *batch, dim)``.
 
     The observations stand in for the model's ``x``: ``r`` follows
     ``dr/dt = g(x_obs(t), r)`` (continuous; ``x_obs`` linear between samples) or
     ``r_{n+1} = cell(x_n, r_n)`` (discrete) from ``r0`` (the closure's initial
-    hidden state by default) over the ``T − 1`` intervals. Returns ``None`` for a
+    hidden state by default) over the ``T − 1`` intervals, the first sample at
+    time ``t0``. ``forcing`` is ``u(t)`` for a forced model. Returns ``None`` for a
     memoryless model. ``grad_steps`` keeps the graph only for the last that many
     intervals (truncated backpropagation saves time on long warm-ups).
     """
@@ -182,7 +209,6 @@ def warm_up(model: HybridField | HybridFlowMap, history: torch.Tensor, dt: float
     r = closure.initial_hidden(history.shape[1:-1], history.dtype) if r0 is None else r0
     n = history.shape[0] - 1
     first_grad = 0 if grad_steps is None else max(0, n - grad_steps)
-    forcing = getattr(model, "forcing", None)
 
     def advance(i, r):
         if isinstance(model, HybridFlowMap):

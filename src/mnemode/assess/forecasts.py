@@ -128,28 +128,23 @@ def run_forecasts(model: HybridField | HybridFlowMap, solver: Solver | None, sta
     size = n if batch_size is None else max(1, int(batch_size))
     out = np.full((n_steps + 1, n, data.shape[-1]), np.nan)
     failure = None
-    saved_forcing = getattr(model, "forcing", None)
-    try:
-        for lo in range(0, n, size):
-            sl = slice(lo, min(n, lo + size))
-            traj = torch.as_tensor(starts.trajectory[sl])
-            first = torch.as_tensor(starts.index[sl] - n_warm)
-            history = take_windows(data, traj, first, n_warm + 1)
-            if forcing is not None and isinstance(model, HybridField):
-                u = take_windows(torch.as_tensor(np.asarray(forcing), dtype=dtype), traj, first,
-                                 n_warm + n_steps + 1)
-                model.forcing = Forcing(-n_warm * dt, dt, u)
-            try:
-                with torch.no_grad():
-                    r0 = warm_up(model, history, dt, solver, t0=-n_warm * dt) if model.hidden_size else None
-                    x = simulate(model, history[-1], n_steps, dt, solver, r0=r0, t0=0.0)
-                out[:, sl] = x.detach().to(torch.float64).cpu().numpy()
-            except _NUMERICAL_FAILURES as exc:  # a blow-up is a result, not a crash
-                failure = f"{type(exc).__name__}: {exc}"
-                out[0, sl] = history[-1].to(torch.float64).cpu().numpy()
-            if on_batch is not None:
-                on_batch(sl.stop - sl.start)
-    finally:
-        if isinstance(model, HybridField):
-            model.forcing = saved_forcing
+    for lo in range(0, n, size):
+        sl = slice(lo, min(n, lo + size))
+        traj = torch.as_tensor(starts.trajectory[sl])
+        first = torch.as_tensor(starts.index[sl] - n_warm)
+        history = take_windows(data, traj, first, n_warm + 1)
+        u = None
+        if forcing is not None and isinstance(model, HybridField):
+            u = Forcing(-n_warm * dt, dt, take_windows(torch.as_tensor(np.asarray(forcing), dtype=dtype), traj,
+                                                       first, n_warm + n_steps + 1))
+        try:
+            with torch.no_grad():
+                r0 = warm_up(model, history, dt, solver, t0=-n_warm * dt, forcing=u) if model.hidden_size else None
+                x = simulate(model, history[-1], n_steps, dt, solver, r0=r0, t0=0.0, forcing=u)
+            out[:, sl] = x.detach().to(torch.float64).cpu().numpy()
+        except _NUMERICAL_FAILURES as exc:  # a blow-up is a result, not a crash
+            failure = f"{type(exc).__name__}: {exc}"
+            out[0, sl] = history[-1].to(torch.float64).cpu().numpy()
+        if on_batch is not None:
+            on_batch(sl.stop - sl.start)
     return RunOutcome(out, failure)

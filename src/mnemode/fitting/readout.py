@@ -87,20 +87,14 @@ def drive_hidden(model: HybridField | HybridFlowMap, data: TrajectorySet, solver
     dtype = dtype or model_dtype(model)
     states = data.tensor(dtype)
     dt = data.dt
-    saved = getattr(model, "forcing", None)
     u = _forcing_tensor(data, dtype)
-    if u is not None and isinstance(model, HybridField):
-        model.forcing = Forcing(float(data.times[0]), dt, u)
-    try:
-        with torch.no_grad():
-            r = model.closure.initial_hidden(states.shape[1:-1], dtype)
-            out = [r]
-            for i in range(data.n_times - 1):
-                r = warm_up(model, states[i:i + 2], dt, solver, r0=r, t0=float(data.times[i]))
-                out.append(r)
-    finally:
-        if isinstance(model, HybridField):
-            model.forcing = saved
+    forcing = Forcing(float(data.times[0]), dt, u) if u is not None and isinstance(model, HybridField) else None
+    with torch.no_grad():
+        r = model.closure.initial_hidden(states.shape[1:-1], dtype)
+        out = [r]
+        for i in range(data.n_times - 1):
+            r = warm_up(model, states[i:i + 2], dt, solver, r0=r, t0=float(data.times[i]), forcing=forcing)
+            out.append(r)
     return torch.stack(out)
 
 

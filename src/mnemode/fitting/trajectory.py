@@ -220,19 +220,20 @@ class TrajectoryFit:
 
     # -- unrolls --------------------------------------------------------------------
     def _forecast(self, model, win: torch.Tensor, n_warm: int, n_grad: int, n_f: int, dt: float, solver,
-                  reforce: int | None) -> torch.Tensor:
+                  reforce: int | None, forcing: Forcing | None = None) -> torch.Tensor:
         """Warm up on ``win[:n_warm+1]``, forecast ``n_f`` intervals; returns ``(n_f, B, D)`` predictions."""
         r = None
         if model.hidden_size:
             n_free = n_warm - n_grad
             if n_free > 0:
                 with torch.no_grad():
-                    r = warm_up(model, win[:n_free + 1], dt, solver, t0=0.0)
-            r = warm_up(model, win[n_free:n_warm + 1], dt, solver, r0=r, t0=n_free * dt)
+                    r = warm_up(model, win[:n_free + 1], dt, solver, t0=0.0, forcing=forcing)
+            r = warm_up(model, win[n_free:n_warm + 1], dt, solver, r0=r, t0=n_free * dt, forcing=forcing)
         preds, pos, left = [], n_warm, n_f
         while left > 0:
             k = left if reforce is None else min(left, reforce)
-            xs, rs = simulate(model, win[pos], k, dt, solver, r0=r, t0=pos * dt, return_hidden=True)
+            xs, rs = simulate(model, win[pos], k, dt, solver, r0=r, t0=pos * dt, return_hidden=True,
+                              forcing=forcing)
             preds.append(xs[1:])
             if model.hidden_size:
                 r = rs[-1]
@@ -241,14 +242,10 @@ class TrajectoryFit:
 
     def _run_windows(self, model, states, forcing, traj, start, n_warm, n_grad, n_f, dt, solver, reforce):
         win = take_windows(states, traj, start, n_warm + n_f + 1)
-        saved = getattr(model, "forcing", None)
+        u = None
         if forcing is not None and isinstance(model, HybridField):
-            model.forcing = Forcing(0.0, dt, take_windows(forcing, traj, start, n_warm + n_f + 1))
-        try:
-            pred = self._forecast(model, win, n_warm, n_grad, n_f, dt, solver, reforce)
-        finally:
-            if isinstance(model, HybridField):
-                model.forcing = saved
+            u = Forcing(0.0, dt, take_windows(forcing, traj, start, n_warm + n_f + 1))
+        pred = self._forecast(model, win, n_warm, n_grad, n_f, dt, solver, reforce, u)
         return pred, win[n_warm + 1:]
 
     # -- validation -----------------------------------------------------------------

@@ -34,38 +34,38 @@ def _advection(x: torch.Tensor) -> torch.Tensor:
 
 
 class Lorenz96Field(VectorField):
-    """Single-scale Lorenz-96 right-hand side on a ring of ``k`` sites with forcing ``forcing``."""
+    """Single-scale Lorenz-96 right-hand side on a ring of ``k`` sites with constant forcing ``F``."""
 
-    def __init__(self, k: int = 40, forcing: float = 8.0):
+    def __init__(self, k: int = 40, F: float = 8.0):
         super().__init__()
         if k < 4:
             raise ValueError(f"Lorenz-96 needs at least 4 sites on the ring, got k={k}")
         self.dim = int(k)
-        self.forcing = float(forcing)
+        self.F = float(F)
 
     def forward(self, t, x, u=None):
-        return _advection(x) - x + self.forcing
+        return _advection(x) - x + self.F
 
     def extra_repr(self) -> str:
-        return f"k={self.dim}, forcing={self.forcing}"
+        return f"k={self.dim}, F={self.F}"
 
 
 class Lorenz96TwoScaleField(VectorField):
     """Two-scale Lorenz-96 right-hand side; state is ``[X (k), Y (k·j)]``."""
 
-    def __init__(self, k: int = 36, j: int = 10, forcing: float = 10.0,
+    def __init__(self, k: int = 36, j: int = 10, F: float = 10.0,
                  coupling: float = 1.0, amplitude_ratio: float = 10.0, time_scale_ratio: float = 10.0):
         super().__init__()
         self.k, self.j = int(k), int(j)
         self.dim = self.k * (1 + self.j)
-        self.forcing = float(forcing)
+        self.F = float(F)
         self.h, self.b, self.c = float(coupling), float(amplitude_ratio), float(time_scale_ratio)
 
     def forward(self, t, x, u=None):
         X, Y = x[..., : self.k], x[..., self.k:]
         hcb = self.h * self.c / self.b
         coupling = Y.reshape(*Y.shape[:-1], self.k, self.j).sum(-1)
-        dX = _advection(X) - X + self.forcing - hcb * coupling
+        dX = _advection(X) - X + self.F - hcb * coupling
         # Fast ring: −c b Y_{j+1}(Y_{j+2} − Y_{j−1}) − c Y_j + (hc/b) X_k
         Yp1 = torch.roll(Y, -1, -1)
         dY = (-self.c * self.b * Yp1 * (torch.roll(Y, -2, -1) - torch.roll(Y, 1, -1))
@@ -73,14 +73,14 @@ class Lorenz96TwoScaleField(VectorField):
         return torch.cat((dX, dY), dim=-1)
 
     def extra_repr(self) -> str:
-        return f"k={self.k}, j={self.j}, forcing={self.forcing}, h={self.h}, b={self.b}, c={self.c}"
+        return f"k={self.k}, j={self.j}, F={self.F}, h={self.h}, b={self.b}, c={self.c}"
 
 
-def lorenz96(k: int = 40, forcing: float = 8.0, nominal_forcing: float | None = None,
+def lorenz96(k: int = 40, F: float = 8.0, nominal_F: float | None = None,
              spin_up: float = 20.0) -> System:
     """Single-scale Lorenz-96; the nominal model may use a different forcing."""
-    truth = Lorenz96Field(k, forcing)
-    nominal = Lorenz96Field(k, forcing if nominal_forcing is None else nominal_forcing)
+    truth = Lorenz96Field(k, F)
+    nominal = Lorenz96Field(k, F if nominal_F is None else nominal_F)
     return System(
         name="lorenz96",
         state_names=tuple(f"X{i + 1}" for i in range(k)),
@@ -91,18 +91,18 @@ def lorenz96(k: int = 40, forcing: float = 8.0, nominal_forcing: float | None = 
         observed_index=tuple(range(k)),
         spin_up=spin_up,
         ring=True,
-        initial_mean=(forcing,) * k,
+        initial_mean=(F,) * k,
         initial_scale=(1.0,) * k,
         description="Lorenz-96 single scale; " + truth.extra_repr(),
     )
 
 
-def lorenz96_two_scale(k: int = 36, j: int = 10, forcing: float = 10.0, coupling: float = 1.0,
+def lorenz96_two_scale(k: int = 36, j: int = 10, F: float = 10.0, coupling: float = 1.0,
                        amplitude_ratio: float = 10.0, time_scale_ratio: float = 10.0,
                        spin_up: float = 10.0) -> System:
     """Two-scale Lorenz-96; observed = slow X, nominal = slow equations without coupling."""
-    truth = Lorenz96TwoScaleField(k, j, forcing, coupling, amplitude_ratio, time_scale_ratio)
-    nominal = Lorenz96Field(k, forcing)
+    truth = Lorenz96TwoScaleField(k, j, F, coupling, amplitude_ratio, time_scale_ratio)
+    nominal = Lorenz96Field(k, F)
     return System(
         name="lorenz96_two_scale",
         state_names=tuple(f"X{i + 1}" for i in range(k)),
