@@ -45,7 +45,7 @@ def _sklearn(hp, d, x_norm, y, optimise=False):
 
 def test_mean_variance_and_likelihood_match_sklearn_at_fixed_hyperparameters():
     x, y = _data()
-    gp = GaussianProcessClosure(2, in_dim=3, optimise=False, lengthscale_init=[[0.7, 1.3, 2.0], [1.5, 0.8, 0.6]],
+    gp = GaussianProcessClosure(2, forcing_dim=1, optimise=False, lengthscale_init=[[0.7, 1.3, 2.0], [1.5, 0.8, 0.6]],
                                 amplitude_init=1.7, noise_init=0.05).double()
     x_norm = _fitted_scaling(gp, x, y)
     gp.fit_regression(torch.as_tensor(x), torch.as_tensor(y))
@@ -66,7 +66,7 @@ def test_mean_variance_and_likelihood_match_sklearn_at_fixed_hyperparameters():
 
 def test_ml2_optimisation_reaches_sklearn_likelihood():
     x, y = _data(n=60, seed=1)
-    gp = GaussianProcessClosure(2, in_dim=3, n_restarts=2).double()
+    gp = GaussianProcessClosure(2, forcing_dim=1, n_restarts=2).double()
     x_norm = _fitted_scaling(gp, x, y)
     gp.fit_regression(torch.as_tensor(x), torch.as_tensor(y), generator=torch.Generator().manual_seed(0))
     ours = gp.log_marginal_likelihood(per_output=True)
@@ -82,7 +82,7 @@ def test_ml2_optimisation_reaches_sklearn_likelihood():
 
 def test_subset_of_data_and_prior_mean():
     x, y = _data(n=120)
-    gp = GaussianProcessClosure(2, in_dim=3, max_points=40, optimise=False).double()
+    gp = GaussianProcessClosure(2, forcing_dim=1, max_points=40, optimise=False).double()
     _fitted_scaling(gp, x, y)
     gp.fit_regression(torch.as_tensor(x), torch.as_tensor(y), generator=torch.Generator().manual_seed(3))
     assert gp.train_x.shape == (40, 3) and gp.alpha.shape == (40, 2)
@@ -96,11 +96,11 @@ def test_subset_of_data_and_prior_mean():
 @pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
 def test_state_dict_round_trip_through_weights_only_load(tmp_path, dtype):
     x, y = _data()
-    gp = GaussianProcessClosure(2, in_dim=3, max_points=50, n_restarts=0, max_iter=30).to(dtype)
+    gp = GaussianProcessClosure(2, forcing_dim=1, max_points=50, n_restarts=0, max_iter=30).to(dtype)
     _fitted_scaling(gp, x, y)
     gp.fit_regression(torch.as_tensor(x), torch.as_tensor(y))
     torch.save(gp.state_dict(), tmp_path / "gp.pt")
-    rebuilt = GaussianProcessClosure(2, in_dim=3, max_points=50, n_restarts=0, max_iter=30).to(dtype)
+    rebuilt = GaussianProcessClosure(2, forcing_dim=1, max_points=50, n_restarts=0, max_iter=30).to(dtype)
     rebuilt.load_state_dict(torch.load(tmp_path / "gp.pt", weights_only=True))
     probe = torch.as_tensor(x[:9] + 0.05, dtype=dtype).reshape(3, 3, 3)   # batched over two leading dims
     out = gp.correction(probe)
@@ -112,10 +112,10 @@ def test_state_dict_round_trip_through_weights_only_load(tmp_path, dtype):
 
 def test_bad_input_raises_mnemode_errors():
     with pytest.raises(ConfigError, match="lengthscale_init"):
-        GaussianProcessClosure(2, in_dim=3, lengthscale_init=[1.0, 2.0])
+        GaussianProcessClosure(2, forcing_dim=1, lengthscale_init=[1.0, 2.0])
     with pytest.raises(ConfigError, match="noise_init"):
         GaussianProcessClosure(2, noise_init=0.0)
-    gp = GaussianProcessClosure(2, in_dim=3)
+    gp = GaussianProcessClosure(2, forcing_dim=1)
     with pytest.raises(DataError, match=r"\(N, 3\)"):
         gp.fit_regression(torch.zeros(10, 2), torch.zeros(10, 2))
     with pytest.raises(ConfigError, match="no training data"):

@@ -38,7 +38,7 @@ def test_features_approximate_the_squared_exponential_kernel():
 def test_readout_solves_the_ridge_normal_equations():
     x, y = _data()
     ridge = 1e-4
-    closure = RandomFeatureClosure(2, in_dim=3, n_features=60, lengthscale=2.0, ridge=ridge).double()
+    closure = RandomFeatureClosure(2, forcing_dim=1, n_features=60, lengthscale=2.0, ridge=ridge).double()
     set_scaling(closure, x, y)
     closure.fit_regression(x, y)
     # Reference: numpy.linalg.solve of (ΦᵀΦ + ridge·N·diag(1,…,1,0)) A = ΦᵀỸ (bias row unpenalised).
@@ -56,12 +56,12 @@ def test_lengthscale_is_chosen_by_validation_error():
     x, y = _data(n=600)
     xv, yv = _data(n=300, seed=5)
     grid = [0.05, 1.0, 30.0]
-    closure = RandomFeatureClosure(2, in_dim=3, n_features=200, lengthscale=grid, ridge=1e-8).double()
+    closure = RandomFeatureClosure(2, forcing_dim=1, n_features=200, lengthscale=grid, ridge=1e-8).double()
     set_scaling(closure, x, y)
     info = closure.fit_regression(x, y, val_inputs=xv, val_targets=yv)
     errors = []
     for ell in grid:  # the same fit by hand for each candidate
-        single = RandomFeatureClosure(2, in_dim=3, n_features=200, lengthscale=ell, ridge=1e-8).double()
+        single = RandomFeatureClosure(2, forcing_dim=1, n_features=200, lengthscale=ell, ridge=1e-8).double()
         set_scaling(single, x, y)
         single.fit_regression(x, y)
         with torch.no_grad():
@@ -73,7 +73,7 @@ def test_lengthscale_is_chosen_by_validation_error():
 @pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
 def test_state_dict_round_trip_through_weights_only_load(tmp_path, dtype):
     x, y = _data()
-    kwargs = dict(in_dim=3, n_features=80, lengthscale=[1.0, 3.0], ridge=1e-6, seed=7)
+    kwargs = dict(forcing_dim=1, n_features=80, lengthscale=[1.0, 3.0], ridge=1e-6, seed=7)
     closure = RandomFeatureClosure(2, **kwargs).to(dtype)
     set_scaling(closure, x, y)
     closure.fit_regression(x, y)

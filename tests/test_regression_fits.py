@@ -12,7 +12,7 @@ import torch
 from torch import nn
 
 from mnemode.assess.metrics import validity_times
-from mnemode.closures import (Closure, GaussianProcessClosure, MLPClosure, RandomFeatureClosure,
+from mnemode.closures import (Recurrent, GaussianProcessClosure, MLPClosure, RandomFeatureClosure,
                               RingLocalClosure)
 from mnemode.data import TrajectorySet, generate
 from mnemode.errors import ConfigError
@@ -88,11 +88,14 @@ def test_fit_returns_plain_diagnostics_and_logs_to_tensorboard(small_l63, tmp_pa
     assert len(events.Scalars("l63/mlp/train_loss")) == 3
 
 
-class _WithMemory(Closure):
+class _WithMemory(Recurrent):
     hidden_size = 2
 
     def correction(self, x, r=None, u=None):
         return x
+
+    def hidden_field(self, x, r, u=None):
+        return -r
 
 
 def test_wrong_model_forms_raise_config_errors(small_l63):
@@ -105,8 +108,8 @@ def test_wrong_model_forms_raise_config_errors(small_l63):
     wrong_dt = HybridFlowMap(FlowMap(system.nominal, 0.02, RK4(0.002)), RandomFeatureClosure(3), 3, 0.02)
     with pytest.raises(ConfigError, match="sampling interval"):
         FlowMapRegression().fit(wrong_dt, ts)
-    with pytest.raises(ConfigError, match="in_dim: 3"):
-        DerivativeRegression().fit(HybridField(system.nominal, RandomFeatureClosure(3, in_dim=4), 3), ts)
+    with pytest.raises(ConfigError, match="forcing_dim: 0"):
+        DerivativeRegression().fit(HybridField(system.nominal, RandomFeatureClosure(3, forcing_dim=1), 3), ts)
     with pytest.raises(ConfigError, match="scheme"):
         DerivativeRegression(scheme="central6")
     with pytest.raises(ConfigError, match="activation"):
@@ -139,7 +142,7 @@ def test_forcing_inputs_reach_the_physics_and_the_closure(fitter):
     times = np.arange(n + 1) * dt
     forcing = np.sin(omega.numpy()[None, :] * times[:, None])[..., None]
     ts = TrajectorySet(times, states, ("x1", "x2"), forcing=forcing, forcing_names=("u",))
-    closure = RandomFeatureClosure(2, in_dim=3, n_features=300, lengthscale=[1.0, 2.0, 4.0], ridge=1e-8).double()
+    closure = RandomFeatureClosure(2, forcing_dim=1, n_features=300, lengthscale=[1.0, 2.0, 4.0], ridge=1e-8).double()
     train, test = ts.select(slice(0, 5)), ts.select([5])
     fitter.fit(HybridField(_ForcedNominal(), closure, 2), train, None, FitContext())
     x = torch.as_tensor(test.states.reshape(-1, 2))

@@ -7,7 +7,7 @@ import pytest
 import torch
 from scipy.integrate import solve_ivp
 
-from mnemode.closures import ReservoirClosure
+from mnemode.closures import DiscreteRecurrent, Recurrent, ReservoirClosure, ReservoirFlowClosure
 from mnemode.errors import ConfigError
 
 
@@ -16,13 +16,10 @@ def test_discrete_update_equals_the_continuous_field_solved_with_the_input_held(
     # Reference: scipy's DOP853 on the closure's own continuous field dr/dt with x held
     # fixed over the interval (zero-order hold), to rtol 1e-12.
     dt = 0.2
-    previous = torch.get_default_dtype()
-    torch.set_default_dtype(torch.float64)  # build the buffers in float64, not float32 upcast
-    try:
-        cont = ReservoirClosure(2, kind=kind, hidden_size=12, seed=3)
-        disc = ReservoirClosure(2, kind=kind, hidden_size=12, seed=3, interval=dt)
-    finally:
-        torch.set_default_dtype(previous)
+    # built in float64 directly, not float32 upcast
+    cont = ReservoirClosure(2, kind=kind, hidden_size=12, seed=3, dtype=torch.float64)
+    disc = ReservoirFlowClosure(2, kind=kind, hidden_size=12, seed=3, interval=dt, dtype="float64")
+    assert isinstance(disc, DiscreteRecurrent) and isinstance(cont, Recurrent)
     assert disc.discrete and not cont.discrete
     x = torch.tensor([0.7, -1.3], dtype=torch.float64)
     r0 = torch.linspace(-0.5, 0.5, 12, dtype=torch.float64)
@@ -37,4 +34,6 @@ def test_discrete_update_equals_the_continuous_field_solved_with_the_input_held(
 
 def test_interval_must_be_positive():
     with pytest.raises(ConfigError, match="interval"):
-        ReservoirClosure(3, interval=0.0)
+        ReservoirFlowClosure(3, interval=0.0)
+    with pytest.raises(ConfigError, match="ReservoirFlowClosure"):
+        ReservoirClosure(3, interval=0.1)

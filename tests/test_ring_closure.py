@@ -81,9 +81,9 @@ def test_bad_configurations_raise_config_errors():
     with pytest.raises(ConfigError, match="neighbours"):
         RingLocalClosure(4, neighbours=2)
     with pytest.raises(ConfigError, match="in_dim"):
-        RingLocalClosure(8, inner=RandomFeatureClosure(1, in_dim=3), neighbours=2)
+        RingLocalClosure(8, inner=RandomFeatureClosure(1, n_inputs=3), neighbours=2)
     with pytest.raises(ConfigError, match="forcing"):
-        RingLocalClosure(8, in_dim=9)
+        RingLocalClosure(8, forcing_dim=1)
 
 
 @pytest.fixture(scope="module")

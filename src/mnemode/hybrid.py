@@ -24,7 +24,7 @@ from typing import Callable
 import torch
 from torch import nn
 
-from .closures.base import Closure
+from .closures.base import Closure, DiscreteRecurrent, Recurrent
 from .solvers import FlowMap, Solver
 
 __all__ = ["HybridField", "HybridFlowMap", "Forcing", "Driven", "simulate", "warm_up"]
@@ -61,7 +61,7 @@ class HybridField(nn.Module):
         super().__init__()
         if physics is None and closure is None:
             raise ValueError("a hybrid model needs physics, a closure, or both")
-        if closure is not None and closure.discrete:
+        if isinstance(closure, DiscreteRecurrent):
             raise ValueError(f"{type(closure).__name__} is a discrete closure; use HybridFlowMap")
         self.physics, self.closure, self.dim = physics, closure, int(dim)
 
@@ -113,13 +113,13 @@ class HybridFlowMap(nn.Module):
     Args:
         flow_map: Ψ0 (a :class:`~mnemode.solvers.FlowMap` of the nominal field) or
             ``None`` for a data-only discrete model (``x_{n+1} = x_n + Δt·m``).
-        closure: memoryless closure or a discrete recurrent one (``discrete=True``).
+        closure: memoryless closure or a :class:`~mnemode.closures.DiscreteRecurrent` one.
         dt: the observation interval Δt.
     """
 
     def __init__(self, flow_map: FlowMap | None, closure: Closure | None, dim: int, dt: float):
         super().__init__()
-        if closure is not None and closure.hidden_size and not closure.discrete:
+        if isinstance(closure, Recurrent):
             raise ValueError(f"{type(closure).__name__} has a continuous hidden field (dr/dt); a discrete model "
                              "needs a recurrent cell (e.g. GRUFlowClosure) or a memoryless closure")
         self.flow_map, self.closure, self.dim, self.dt = flow_map, closure, int(dim), float(dt)

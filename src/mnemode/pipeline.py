@@ -8,7 +8,6 @@ hand and call the stage libraries directly.
 from __future__ import annotations
 
 import hashlib
-import inspect
 import json
 import logging
 import time
@@ -19,6 +18,7 @@ import torch
 from hydra.utils import instantiate
 from omegaconf import DictConfig, OmegaConf
 
+from .closures.base import Closure, DiscreteRecurrent, Recurrent
 from .data import TrajectorySet, generate, load_trajectories
 from .errors import CheckpointError, ConfigError, MnemodeError
 from .fitting.checkpoint import checkpoint_step
@@ -192,55 +192,37 @@ def model_specs(cfg: DictConfig) -> dict[str, DictConfig]:
     return specs
 
 
-def _closure_kwargs(spec: DictConfig, system: System, n_forcing: int, what: str) -> dict:
-    """Constructor arguments the run supplies: ``dim``, and the forcing inputs if the data have them."""
-    kwargs = {"dim": system.dim}
-    if not n_forcing:
-        return kwargs
-    from hydra.utils import get_method
-
-    try:
-        params = inspect.signature(get_method(spec.closure._target_)).parameters
-    except Exception:  # an unresolvable target is reported by _instantiate
-        return kwargs
-    if "forcing_dim" in params:
-        kwargs["forcing_dim"] = n_forcing
-    elif "in_dim" in params:
-        kwargs["in_dim"] = system.dim + n_forcing
-    else:
-        raise ConfigError(what, f"{spec.closure._target_} cannot take the data's {n_forcing} forcing input(s)",
-                          "choose a closure that accepts forcing (random_features, mlp, gaussian_process, "
-                          "leaky_memory, filter_bank) or drop data.forcing_columns.")
-    return kwargs
-
-
 def build_model(spec: DictConfig, system: System, dt: float, dtype=torch.float64,
                 what: str = "closure", n_forcing: int = 0) -> HybridField | HybridFlowMap:
     """An unfitted hybrid model from a model spec (``form``, ``physics``, ``closure``).
 
-    ``n_forcing`` forcing inputs (from the data) are passed to the physics as ``u``
-    and appended to the closure's inputs.
+    Every closure is built with the run's ``dim``, ``forcing_dim`` (the data's forcing
+    inputs, passed to the physics as ``u`` and appended to the closure's inputs) and
+    ``dtype``.
     """
     closure = None
     if spec.get("closure") is not None:
-        previous = torch.get_default_dtype()
-        torch.set_default_dtype(dtype)  # closures derive constants at construction: keep full precision
-        try:
-            closure = _instantiate(spec.closure, what, **_closure_kwargs(spec, system, n_forcing, what))
-        finally:
-            torch.set_default_dtype(previous)
+        closure = _instantiate(spec.closure, what, dim=system.dim, forcing_dim=int(n_forcing),
+                               dtype=str(dtype).replace("torch.", ""))
+        if not isinstance(closure, Closure):
+            raise ConfigError(f"{what}._target_", f"built a {type(closure).__name__}, expected a mnemode Closure",
+                              "point it at a class in mnemode.closures (or a Closure subclass of your own).")
     physics = system.nominal if spec.get("physics", True) else None
     form = spec.get("form", "continuous")
     if form == "continuous":
-        if closure is not None and closure.discrete:
+        if isinstance(closure, DiscreteRecurrent):
             raise ConfigError(f"{what}", f"{type(closure).__name__} acts on the flow map but the model form is "
                               "'continuous'", "set model.form=discrete for this closure.")
         model = HybridField(physics, closure, system.dim)
     elif form == "discrete":
-        if closure is not None and closure.hidden_size and not closure.discrete:
+        if isinstance(closure, Recurrent):
             raise ConfigError(f"{what}", f"{type(closure).__name__} has a continuous hidden field but the model "
-                              "form is 'discrete'", "use closure=gru_flow for a discrete model with memory, or "
-                              "set model.form=continuous.")
+                              "form is 'discrete'", "use closure=gru_flow or filter_bank_flow for a discrete model "
+                              "with memory, or set model.form=continuous.")
+        if n_forcing:
+            raise ConfigError(f"{what}", f"the data have {n_forcing} forcing input(s) and the model form is "
+                              "'discrete'; discrete models take no forcing in this version",
+                              "set model.form=continuous for forced data.")
         flow = None
         if physics is not None:
             flow = FlowMap(physics, dt, RK4(float(spec.get("psi0_step") or dt / 10)))

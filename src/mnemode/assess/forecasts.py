@@ -78,7 +78,7 @@ def model_dtype(model) -> torch.dtype:
     Physics fields hold plain floats (dtype-agnostic), so only a learned closure
     fixes the dtype; a closure with no tensors (or no closure) runs in float64.
     """
-    closure = getattr(model, "closure", None)
+    closure = model.closure
     if closure is not None:
         for t in itertools.chain(closure.parameters(), closure.buffers()):
             if t.is_floating_point():

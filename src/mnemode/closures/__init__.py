@@ -1,8 +1,8 @@
 """Learnable corrections, one module per family (see :mod:`mnemode.closures.base`)."""
 
-from .base import Closure, Scaling
+from .base import Closure, DiscreteRecurrent, LinearReadout, Memory, Recurrent, RegressionFittable, Scaling
 
-__all__ = ["Closure", "Scaling"]
+__all__ = ["Closure", "Scaling", "RegressionFittable", "LinearReadout", "Memory", "Recurrent", "DiscreteRecurrent"]
 
 from .gaussian_process import GaussianProcessClosure
 from .mlp import MLPClosure
@@ -13,6 +13,6 @@ __all__ += ["GaussianProcessClosure", "MLPClosure", "RandomFeatureClosure", "Rin
 
 from .discrete import GRUFlowClosure
 from .recurrent import RecurrentClosure
-from .reservoir import ReservoirClosure
+from .reservoir import ReservoirClosure, ReservoirFlowClosure
 
-__all__ += ["RecurrentClosure", "ReservoirClosure", "GRUFlowClosure"]
+__all__ += ["RecurrentClosure", "ReservoirClosure", "ReservoirFlowClosure", "GRUFlowClosure"]

@@ -25,13 +25,13 @@ import torch
 from torch import nn
 
 from ..errors import ConfigError
-from .base import Closure, Scaling
+from .base import DiscreteRecurrent, Scaling
 from .recurrent import _INITIAL, _READOUTS, _MLP, _check_choice
 
 __all__ = ["GRUFlowClosure"]
 
 
-class GRUFlowClosure(Closure):
+class GRUFlowClosure(DiscreteRecurrent):
     """Discrete recurrent closure ``(x_n, r_n) ↦ (m_n, r_{n+1})`` (module docstring).
 
     Args:
@@ -44,11 +44,12 @@ class GRUFlowClosure(Closure):
         seed: seeds the initial weights.
     """
 
-    discrete = True
-
     def __init__(self, dim: int, hidden_size: int = 16, readout: str = "linear", readout_width: int = 32,
-                 initial_hidden: str = "zeros", seed: int = 0):
-        super().__init__(dim)
+                 initial_hidden: str = "zeros", seed: int = 0, forcing_dim: int = 0, dtype=None):
+        super().__init__(dim, 0, None, dtype)
+        if int(forcing_dim) != 0:
+            raise ConfigError("closure", f"GRUFlowClosure got forcing_dim={forcing_dim}; discrete closures take no "
+                              "forcing inputs in this version", "use model.form=continuous for forced data.")
         _check_choice("readout", readout, _READOUTS)
         _check_choice("initial_hidden", initial_hidden, _INITIAL)
         if int(hidden_size) < 1:
@@ -56,9 +57,9 @@ class GRUFlowClosure(Closure):
                               "use a memoryless closure for hidden_size 0.")
         self.hidden_size, self.readout, self.readout_width = int(hidden_size), readout, int(readout_width)
         self.initial_hidden_mode, self.seed = initial_hidden, int(seed)
-        self.scaling = Scaling(self.dim, self.dim)
+        self.scaling = Scaling(self.dim, self.dim, self.dtype)
         gen = torch.Generator().manual_seed(self.seed)
-        dtype = torch.get_default_dtype()
+        dtype = self.dtype
         H = self.hidden_size
         self.cell = nn.utils.skip_init(nn.GRUCell, self.dim, H, dtype=dtype)
         with torch.no_grad():  # seeded re-initialisation, U(−1/√H, 1/√H) as torch's default

@@ -38,7 +38,7 @@ import numpy as np
 import torch
 
 from ..errors import ConfigError, DataError, FitDiverged
-from .base import Closure, Scaling
+from .base import Closure, RegressionFittable, Scaling
 
 __all__ = ["GaussianProcessClosure"]
 
@@ -48,7 +48,7 @@ _SIZED_BUFFERS = ("train_x", "train_y", "alpha")
 _FLOAT64_BUFFERS = ("log_lengthscale", "log_amplitude", "log_noise", "target_mean") + _SIZED_BUFFERS
 
 
-class GaussianProcessClosure(Closure):
+class GaussianProcessClosure(Closure, RegressionFittable):
     """Memoryless closure given by exact GP regression (ARD squared exponential + white noise).
 
     Args:
@@ -74,14 +74,11 @@ class GaussianProcessClosure(Closure):
         ConfigError: non-positive sizes or variances, or a length-scale list of the wrong size.
     """
 
-    def __init__(self, dim: int, in_dim: int | None = None, max_points: int = 500, optimise: bool = True,
+    def __init__(self, dim: int, forcing_dim: int = 0, max_points: int = 500, optimise: bool = True,
                  n_restarts: int = 1, lengthscale_init: float | Sequence = 1.0, amplitude_init: float = 1.0,
-                 noise_init: float = 1e-2, noise_floor: float = 1e-6, max_iter: int = 200, seed: int = 0):
-        super().__init__(dim)
-        self.in_dim = self.dim if in_dim is None else int(in_dim)
-        if self.dim < 1 or self.in_dim < 1:
-            raise ConfigError("closure.dim / closure.in_dim", f"got dim={dim}, in_dim={in_dim}; both must be ≥ 1",
-                              "set positive sizes.")
+                 noise_init: float = 1e-2, noise_floor: float = 1e-6, max_iter: int = 200, seed: int = 0,
+                 n_inputs: int | None = None, dtype=None):
+        super().__init__(dim, forcing_dim, n_inputs, dtype)
         if int(max_points) < 2:
             raise ConfigError("closure.max_points", f"is {max_points}; a GP needs at least 2 points",
                               "use a few hundred to a few thousand.")
@@ -94,7 +91,7 @@ class GaussianProcessClosure(Closure):
         self.noise_floor, self.max_iter, self.seed = float(noise_floor), int(max_iter), int(seed)
         ell = self._lengthscale_matrix(lengthscale_init)
         self.lengthscale_init = ell.tolist()
-        self.scaling = Scaling(self.in_dim, self.dim)
+        self.scaling = Scaling(self.in_dim, self.dim, self.dtype)
         f64 = torch.float64
         self.register_buffer("log_lengthscale", torch.log(torch.as_tensor(ell, dtype=f64)))
         self.register_buffer("log_amplitude", torch.full((self.dim,), math.log(self.amplitude_init), dtype=f64))

@@ -25,7 +25,7 @@ import torch
 from torch import nn
 
 from ..errors import ConfigError, FitDiverged
-from .base import Closure, Scaling
+from .base import Closure, RegressionFittable, Scaling
 
 __all__ = ["MLPClosure", "ACTIVATIONS"]
 
@@ -33,7 +33,7 @@ ACTIVATIONS = {"tanh": nn.Tanh, "gelu": nn.GELU, "relu": nn.ReLU, "silu": nn.SiL
                "softplus": nn.Softplus, "elu": nn.ELU}
 
 
-class MLPClosure(Closure):
+class MLPClosure(Closure, RegressionFittable):
     """Memoryless closure given by a fully connected network.
 
     Args:
@@ -54,11 +54,11 @@ class MLPClosure(Closure):
         ConfigError: an unknown activation or non-positive sizes or rates.
     """
 
-    def __init__(self, dim: int, in_dim: int | None = None, width: int = 32, depth: int = 2,
+    def __init__(self, dim: int, forcing_dim: int = 0, width: int = 32, depth: int = 2,
                  activation: str = "tanh", lr: float = 3e-3, epochs: int = 200, batch_size: int = 256,
-                 weight_decay: float = 0.0, patience: int = 20, seed: int = 0):
-        super().__init__(dim)
-        self.in_dim = self.dim if in_dim is None else int(in_dim)
+                 weight_decay: float = 0.0, patience: int = 20, seed: int = 0, n_inputs: int | None = None,
+                 dtype=None):
+        super().__init__(dim, forcing_dim, n_inputs, dtype)
         if activation not in ACTIVATIONS:
             raise ConfigError("closure.activation", f"{activation!r} is not one of {sorted(ACTIVATIONS)}",
                               "pick one of the listed names.")
@@ -72,13 +72,13 @@ class MLPClosure(Closure):
         self.width, self.depth, self.activation = int(width), int(depth), str(activation)
         self.lr, self.epochs, self.batch_size = float(lr), int(epochs), int(batch_size)
         self.weight_decay, self.patience, self.seed = float(weight_decay), int(patience), int(seed)
-        self.scaling = Scaling(self.in_dim, self.dim)
+        self.scaling = Scaling(self.in_dim, self.dim, self.dtype)
         layers: list[nn.Module] = []
         width_in = self.in_dim
         for _ in range(self.depth):
-            layers += [nn.Linear(width_in, self.width), ACTIVATIONS[self.activation]()]
+            layers += [nn.Linear(width_in, self.width, dtype=self.dtype), ACTIVATIONS[self.activation]()]
             width_in = self.width
-        layers.append(nn.Linear(width_in, self.dim))
+        layers.append(nn.Linear(width_in, self.dim, dtype=self.dtype))
         self.net = nn.Sequential(*layers)
         self._initialise(torch.Generator().manual_seed(self.seed))
 

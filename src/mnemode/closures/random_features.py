@@ -12,7 +12,7 @@ from its config has the same features); the readout ``A`` solves the ridge probl
 
     min_A ‖Φ A − Ỹ‖² + ridge · N · ‖A_{1:p}‖²          (the bias row is not penalised)
 
-in closed form by :func:`mnemode.fitting.ridge.ridge_solve`. The penalty grows with
+in closed form by :func:`mnemode.linalg.ridge_solve`. The penalty grows with
 the number of pairs ``N`` so that ``ridge`` means the same for any data size.
 ``lengthscale`` and ``ridge`` may each be a list: the pair with the smallest
 validation error is chosen (on the given validation pairs, or on a random
@@ -33,7 +33,8 @@ import torch
 from torch import nn
 
 from ..errors import ConfigError, FitDiverged
-from .base import Closure, Scaling
+from ..linalg import ridge_solve
+from .base import Closure, RegressionFittable, Scaling
 
 __all__ = ["RandomFeatureClosure"]
 
@@ -46,7 +47,7 @@ def _as_grid(name: str, value) -> list[float]:
     return values
 
 
-class RandomFeatureClosure(Closure):
+class RandomFeatureClosure(Closure, RegressionFittable):
     """Memoryless closure: random Fourier features of the normalised inputs, ridge readout.
 
     Args:
@@ -64,14 +65,12 @@ class RandomFeatureClosure(Closure):
         ConfigError: non-positive sizes, length-scales or negative penalties.
     """
 
-    def __init__(self, dim: int, in_dim: int | None = None, n_features: int = 300,
+    def __init__(self, dim: int, forcing_dim: int = 0, n_features: int = 300,
                  lengthscale: float | Sequence[float] = 2.0, ridge: float | Sequence[float] = 1e-8,
-                 seed: int = 0, val_fraction: float = 0.2):
-        super().__init__(dim)
-        self.in_dim = self.dim if in_dim is None else int(in_dim)
-        if self.dim < 1 or self.in_dim < 1 or int(n_features) < 1:
-            raise ConfigError("closure", f"dim={dim}, in_dim={in_dim}, n_features={n_features}; all must be ≥ 1",
-                              "set positive sizes.")
+                 seed: int = 0, val_fraction: float = 0.2, n_inputs: int | None = None, dtype=None):
+        super().__init__(dim, forcing_dim, n_inputs, dtype)
+        if int(n_features) < 1:
+            raise ConfigError("closure.n_features", f"is {n_features}; expected ≥ 1", "set a positive size.")
         self.n_features, self.seed = int(n_features), int(seed)
         self.lengthscale_grid = _as_grid("lengthscale", lengthscale)
         self.ridge_grid = _as_grid("ridge", ridge)
@@ -84,14 +83,14 @@ class RandomFeatureClosure(Closure):
             raise ConfigError("closure.val_fraction", f"is {val_fraction}; expected a value in (0, 1)",
                               "e.g. 0.2.")
         self.val_fraction = float(val_fraction)
-        self.scaling = Scaling(self.in_dim, self.dim)
+        self.scaling = Scaling(self.in_dim, self.dim, self.dtype)
         gen = torch.Generator().manual_seed(self.seed)
         self.register_buffer("weights", torch.randn(self.n_features, self.in_dim, generator=gen,
                                                     dtype=torch.float64).float())
         self.register_buffer("phases", (2 * math.pi * torch.rand(self.n_features, generator=gen,
                                                                  dtype=torch.float64)).float())
-        self.register_buffer("lengthscale", torch.tensor(self.lengthscale_grid[0]))
-        self.readout = nn.Parameter(torch.zeros(self.n_features + 1, self.dim))
+        self.register_buffer("lengthscale", torch.tensor(self.lengthscale_grid[0], dtype=self.dtype))
+        self.readout = nn.Parameter(torch.zeros(self.n_features + 1, self.dim, dtype=self.dtype))
 
     def features(self, z: torch.Tensor, lengthscale: float | torch.Tensor | None = None) -> torch.Tensor:
         """Features ``φ(z̃)`` of *normalised* inputs ``(..., in_dim)`` → ``(..., n_features + 1)``."""
@@ -108,9 +107,6 @@ class RandomFeatureClosure(Closure):
         return self.scaling.outputs(phi @ self.readout.to(phi.dtype))
 
     def _solve(self, xt, yt, ell, ridge):
-        # Imported here: mnemode.fitting imports the hybrid models, which import closures.
-        from ..fitting.ridge import ridge_solve
-
         phi = self.features(xt, ell)
         return ridge_solve(phi, yt, ridge * xt.shape[0], penalise_last=False)
 

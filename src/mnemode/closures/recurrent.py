@@ -48,7 +48,7 @@ import torch
 from torch import nn
 
 from ..errors import ConfigError
-from .base import Closure, Scaling
+from .base import LinearReadout, Recurrent, Scaling
 
 __all__ = ["RecurrentClosure", "log_spaced"]
 
@@ -103,7 +103,7 @@ class _MLP(nn.Module):
         return self.out(torch.tanh(self.hidden2(torch.tanh(self.hidden1(z)))))
 
 
-class RecurrentClosure(Closure):
+class RecurrentClosure(Recurrent, LinearReadout):
     """Closure with a continuous-time recurrent hidden state (see the module docstring).
 
     Args:
@@ -138,8 +138,8 @@ class RecurrentClosure(Closure):
     def __init__(self, dim: int, hidden_size: int | None = 8, form: str = "leaky",
                  time_constants=(0.1, 10.0), readout: str = "linear", readout_width: int = 32,
                  initial_hidden: str = "zeros", input_init: str = "random", coupling: bool = True,
-                 forcing_dim: int = 0, seed: int = 0):
-        super().__init__(dim)
+                 forcing_dim: int = 0, seed: int = 0, dtype=None):
+        super().__init__(dim, forcing_dim, None, dtype)
         _check_choice("form", form, _FORMS)
         _check_choice("readout", readout, _READOUTS)
         _check_choice("initial_hidden", initial_hidden, _INITIAL)
@@ -153,9 +153,8 @@ class RecurrentClosure(Closure):
         self.form, self.readout, self.readout_width = form, readout, int(readout_width)
         self.time_constants = _init_bounds("time_constants", time_constants)
         self.initial_hidden_mode, self.input_init, self.coupling = initial_hidden, input_init, bool(coupling)
-        self.forcing_dim, self.seed = int(forcing_dim), int(seed)
-        n_in = self.dim + self.forcing_dim
-        self.in_dim = n_in
+        self.seed = int(seed)
+        n_in = self.in_dim
         if input_init == "filter_bank":
             if form != "leaky":
                 raise ConfigError("input_init", f"'filter_bank' needs form='leaky', got form={form!r}",
@@ -164,10 +163,10 @@ class RecurrentClosure(Closure):
                 raise ConfigError("hidden_size", f"is {hidden_size}, not a multiple of the {n_in} inputs that "
                                   "input_init='filter_bank' gives one integrator each per time constant",
                                   f"use hidden_size = {n_in} × (number of time constants), e.g. {6 * n_in}.")
-        self.scaling = Scaling(n_in, self.dim)
+        self.scaling = Scaling(n_in, self.dim, self.dtype)
 
         gen = torch.Generator().manual_seed(self.seed)
-        dtype = torch.get_default_dtype()
+        dtype = self.dtype
         H = self.hidden_size
 
         def randn(*shape, scale=1.0):

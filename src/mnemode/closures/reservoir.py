@@ -19,8 +19,8 @@ backpropagation). Two kinds:
   Gaussian times ``input_scale``, ``b`` Gaussian times ``bias_scale``, ``τ_i``
   log-spaced over ``time_constants``.
 
-With ``interval`` set (the observation interval Δt) the closure is *discrete*
-(``discrete = True``), for the flow-map form ``x_{n+1} = Ψ0(x_n) + Δt·m(x_n, r_n)``
+:class:`ReservoirFlowClosure` (with ``interval``, the observation interval Δt) is the
+*discrete* variant, for the flow-map form ``x_{n+1} = Ψ0(x_n) + Δt·m(x_n, r_n)``
 at coarse sampling: the hidden state is advanced over one interval by the exact
 solution of the same field with the input held at ``x̃_n`` (zero-order hold)::
 
@@ -42,7 +42,7 @@ import torch
 from torch import nn
 
 from ..errors import ConfigError
-from .base import Closure, Scaling
+from .base import DiscreteRecurrent, LinearReadout, Recurrent, Scaling, Memory
 from .recurrent import _check_choice, _init_bounds, log_spaced
 
 __all__ = ["ReservoirClosure"]
@@ -52,7 +52,7 @@ _DEFAULT_RANDOM_SIZE = 100
 _DEFAULT_FILTERS = 6
 
 
-class ReservoirClosure(Closure):
+class _Reservoir(Memory, LinearReadout):
     """Closure with a fixed recurrent hidden field and a linear readout (module docstring).
 
     Args:
@@ -77,21 +77,22 @@ class ReservoirClosure(Closure):
     def __init__(self, dim: int, hidden_size: int | None = None, kind: str = "filter_bank",
                  time_constants=(0.1, 10.0), spectral_radius: float = 0.9, input_scale: float = 1.0,
                  bias_scale: float = 0.0, quadratic: bool = False, ridge=(1e-8, 1e-6, 1e-4),
-                 forcing_dim: int = 0, seed: int = 0, interval: float | None = None):
-        super().__init__(dim)
+                 forcing_dim: int = 0, seed: int = 0, interval: float | None = None, dtype=None):
+        super().__init__(dim, forcing_dim, None, dtype)
         _check_choice("kind", kind, _KINDS)
-        if interval is not None and not float(interval) > 0:
-            raise ConfigError("interval", f"is {interval}; expected the observation interval Δt > 0 (or null for "
-                              "a continuous hidden field)", "set interval: ${data.dt} or leave it null.")
+        if self.discrete and (interval is None or not float(interval) > 0):
+            raise ConfigError("interval", f"is {interval}; a reservoir on the flow map needs the observation "
+                              "interval Δt > 0", "set interval: ${data.dt}.")
+        if not self.discrete and interval is not None:
+            raise ConfigError("interval", f"is {interval} for a continuous hidden field",
+                              "use mnemode.closures.ReservoirFlowClosure for the flow-map form, or drop interval.")
         self.interval = None if interval is None else float(interval)
-        self.discrete = self.interval is not None
-        self.kind, self.forcing_dim, self.seed = kind, int(forcing_dim), int(seed)
+        self.kind, self.seed = kind, int(seed)
         self.time_constants = _init_bounds("time_constants", time_constants)
         self.spectral_radius, self.input_scale = float(spectral_radius), float(input_scale)
         self.bias_scale, self.quadratic = float(bias_scale), bool(quadratic)
         self.ridge = [float(a) for a in ridge] if hasattr(ridge, "__len__") else float(ridge)
-        n_in = self.dim + self.forcing_dim
-        self.in_dim = n_in
+        n_in = self.in_dim
         if hidden_size is None:
             hidden_size = _DEFAULT_FILTERS * n_in if kind == "filter_bank" else _DEFAULT_RANDOM_SIZE
         H = int(hidden_size)
@@ -105,8 +106,8 @@ class ReservoirClosure(Closure):
             raise ConfigError("ridge", f"is {ridge}; expected a penalty ≥ 0 or a non-empty list of them",
                               "use e.g. ridge: 1e-6 or ridge: [1e-8, 1e-6, 1e-4].")
         self.hidden_size = H
-        self.scaling = Scaling(n_in, self.dim)
-        dtype = torch.get_default_dtype()
+        self.scaling = Scaling(n_in, self.dim, self.dtype)
+        dtype = self.dtype
         gen = torch.Generator().manual_seed(self.seed)
         if kind == "filter_bank":
             taus = log_spaced(self.time_constants, H // n_in).repeat_interleave(n_in)
@@ -144,8 +145,6 @@ class ReservoirClosure(Closure):
         return (target - r) * self.inv_tau
 
     # -- readout ----------------------------------------------------------------
-    has_linear_readout = True
-
     def readout_features(self, x, r, u=None) -> torch.Tensor:
         """Features ``φ = [x̃(, u), r, (pairwise products), 1]``."""
         z = self.normalised_inputs(x, u)
@@ -172,3 +171,11 @@ class ReservoirClosure(Closure):
         return (f"dim={self.dim}, hidden_size={self.hidden_size}, kind={self.kind!r}, "
                 f"time_constants={self.time_constants}, quadratic={self.quadratic}")
 
+
+
+class ReservoirClosure(_Reservoir, Recurrent):
+    """Reservoir with a continuous hidden field ``dr/dt`` (module docstring); ``interval`` must be ``None``."""
+
+
+class ReservoirFlowClosure(_Reservoir, DiscreteRecurrent):
+    """Reservoir on the flow map: ``r_{n+1}`` by the exact step over ``interval`` = Δt (module docstring)."""

@@ -33,12 +33,12 @@ from typing import Callable
 import torch
 
 from ..errors import ConfigError, DataError
-from .base import Closure, Scaling
+from .base import Closure, RegressionFittable, Scaling
 
 __all__ = ["RingLocalClosure"]
 
 
-class RingLocalClosure(Closure):
+class RingLocalClosure(Closure, RegressionFittable):
     """Memoryless closure of a ring built from one local closure shared by all sites.
 
     Args:
@@ -59,13 +59,12 @@ class RingLocalClosure(Closure):
     pooled_scaling = True
 
     def __init__(self, dim: int, inner: Callable[..., Closure] | Closure | None = None, neighbours: int = 2,
-                 in_dim: int | None = None):
-        super().__init__(dim)
+                 forcing_dim: int = 0, dtype=None):
+        super().__init__(dim, 0, None, dtype)
         self.neighbours = int(neighbours)
-        self.in_dim = self.dim if in_dim is None else int(in_dim)
-        if self.in_dim != self.dim:
-            raise ConfigError("closure.in_dim", f"is {in_dim} for a ring of {dim} sites; ring closures take no "
-                              "forcing inputs", "drop in_dim (or set it equal to dim).")
+        if int(forcing_dim) != 0:
+            raise ConfigError("closure", f"a ring closure got forcing_dim={forcing_dim}; ring closures take no "
+                              "forcing inputs", "choose another closure for forced data, or drop the forcing columns.")
         if self.neighbours < 0 or 2 * self.neighbours + 1 > self.dim:
             raise ConfigError("closure.neighbours", f"is {neighbours}; a ring of {self.dim} sites allows 0 to "
                               f"{(self.dim - 1) // 2}", "choose a smaller neighbourhood.")
@@ -76,22 +75,22 @@ class RingLocalClosure(Closure):
         if isinstance(inner, Closure):
             closure = inner
         elif callable(inner):
-            closure = inner(dim=1, in_dim=width)
+            closure = inner(dim=1, n_inputs=width, dtype=self.dtype)
         else:
             raise ConfigError("closure.inner", f"is a {type(inner).__name__}; expected a closure factory",
                               "give a closure config with _partial_: true.")
         if not isinstance(closure, Closure):
             raise ConfigError("closure.inner", f"built a {type(closure).__name__}, not a Closure",
                               "point inner._target_ at a mnemode closure class.")
-        if closure.dim != 1 or getattr(closure, "in_dim", closure.dim) != width or closure.hidden_size:
-            raise ConfigError("closure.inner", f"has dim={closure.dim}, in_dim={getattr(closure, 'in_dim', None)}, "
+        if closure.dim != 1 or closure.in_dim != width or closure.hidden_size:
+            raise ConfigError("closure.inner", f"has dim={closure.dim}, in_dim={closure.in_dim}, "
                               f"hidden_size={closure.hidden_size}; the ring needs a memoryless closure with dim=1 "
                               f"and in_dim={width}", "use _partial_: true so the ring supplies the sizes.")
-        if not hasattr(closure, "fit_regression"):
+        if not isinstance(closure, RegressionFittable):
             raise ConfigError("closure.inner", f"{type(closure).__name__} has no regression fit",
                               "use GaussianProcessClosure, RandomFeatureClosure or MLPClosure.")
         self.inner = closure
-        self.scaling = Scaling(self.dim, self.dim)
+        self.scaling = Scaling(self.dim, self.dim, self.dtype)
         self.register_buffer("offsets", torch.arange(-self.neighbours, self.neighbours + 1), persistent=False)
 
     def neighbourhoods(self, z: torch.Tensor) -> torch.Tensor:

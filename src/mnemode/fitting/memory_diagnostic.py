@@ -44,7 +44,7 @@ from ..closures.random_features import RandomFeatureClosure
 from ..data import FD_SCHEMES, TrajectorySet
 from ..errors import DataError
 from .regression import relative_error, set_scaling
-from .ridge import ridge_solve
+from ..linalg import ridge_solve
 from .targets import derivative_targets
 
 __all__ = ["memory_need", "leaky_averages"]
@@ -134,7 +134,7 @@ def memory_need(train: TrajectorySet, val: TrajectorySet | None, physics, *, sch
     x_tr, y_tr, h_tr = samples(train, "training data")
     x_va, y_va, h_va = samples(val, "validation data")
 
-    closure = RandomFeatureClosure(train.dim, in_dim=x_tr.shape[1], n_features=n_features,
+    closure = RandomFeatureClosure(train.dim, forcing_dim=x_tr.shape[1] - train.dim, n_features=n_features,
                                    lengthscale=list(np.atleast_1d(lengthscale)), ridge=list(np.atleast_1d(ridge)),
                                    seed=seed).double()
     set_scaling(closure, x_tr, y_tr)

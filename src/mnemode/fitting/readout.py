@@ -36,10 +36,11 @@ import torch
 
 from ..assess.forecasts import model_dtype
 from ..data import FD_SCHEMES, TrajectorySet
+from ..closures.base import LinearReadout
 from ..errors import ConfigError, DataError, FitDiverged
 from ..hybrid import Forcing, HybridField, HybridFlowMap, warm_up
+from ..linalg import ridge_solve
 from .regression import relative_error, set_scaling
-from .ridge import ridge_solve
 from .targets import derivative_targets, flow_map_targets
 
 __all__ = ["ReadoutRidge", "residual_targets", "drive_hidden"]
@@ -157,9 +158,8 @@ class ReadoutRidge:
 
     def fit(self, model, train: TrajectorySet, val: TrajectorySet | None, ctx) -> dict:
         t0 = time.perf_counter()
-        closure = getattr(model, "closure", None)
-        if closure is None or not hasattr(closure, "readout_features") or \
-                not getattr(closure, "has_linear_readout", False):
+        closure = model.closure
+        if not (isinstance(closure, LinearReadout) and closure.has_linear_readout):
             name = type(closure).__name__ if closure is not None else "no closure"
             raise ConfigError("fit", f"ReadoutRidge needs a closure with a linear readout over fixed features; "
                               f"got {name}", "use a ReservoirClosure or a RecurrentClosure with readout='linear', "

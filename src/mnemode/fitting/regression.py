@@ -29,7 +29,7 @@ import time
 import numpy as np
 import torch
 
-from ..closures.base import Closure
+from ..closures.base import Closure, Memory, RegressionFittable
 from ..data import FD_SCHEMES, TrajectorySet
 from ..errors import ConfigError, DataError, FitDiverged
 from ..hybrid import HybridField, HybridFlowMap
@@ -51,7 +51,7 @@ def set_scaling(closure: Closure, inputs: torch.Tensor, targets: torch.Tensor, f
     (identical sites). A std below ``floor`` times the value's size is replaced
     by 1 (a constant input or a target that is identically zero).
     """
-    pooled = bool(getattr(closure, "pooled_scaling", False))
+    pooled = closure.pooled_scaling
     stats = []
     for a in (torch.as_tensor(inputs, dtype=torch.float64), torch.as_tensor(targets, dtype=torch.float64)):
         if pooled:
@@ -86,26 +86,26 @@ def relative_error(predicted: torch.Tensor, targets: torch.Tensor) -> float:
 
 
 def _memoryless_closure(model, fitter: str) -> Closure:
-    closure = getattr(model, "closure", None)
+    closure = model.closure
     if closure is None:
         raise ConfigError(f"{fitter} model", "has no closure to fit", "give the hybrid model a closure.")
-    if closure.hidden_size > 0 or closure.discrete:
+    if isinstance(closure, Memory):
         raise ConfigError(f"{fitter} closure", f"{type(closure).__name__} has a hidden state "
                           f"(hidden_size={closure.hidden_size}); regression targets exist only for memoryless "
                           "closures", "use TrajectoryFit or a reservoir readout for closures with memory.")
-    if not hasattr(closure, "fit_regression"):
+    if not isinstance(closure, RegressionFittable):
         raise ConfigError(f"{fitter} closure", f"{type(closure).__name__} cannot be fitted by regression",
                           f"use {_REGRESSION_CLOSURES}.")
     return closure
 
 
 def _check_in_dim(closure: Closure, inputs: torch.Tensor, ts: TrajectorySet, fitter: str) -> None:
-    in_dim = getattr(closure, "in_dim", closure.dim)
+    in_dim = closure.in_dim
     n_forcing = 0 if ts.forcing is None else ts.forcing.shape[-1]
     if inputs.shape[1] != in_dim or ts.dim != closure.dim:
         raise ConfigError(f"{fitter} closure", f"has dim={closure.dim}, in_dim={in_dim}, but the data have "
                           f"{ts.dim} states and {n_forcing} forcing inputs",
-                          f"set the closure's dim: {ts.dim} and in_dim: {ts.dim + n_forcing}.")
+                          f"set the closure's dim: {ts.dim} and forcing_dim: {n_forcing}.")
 
 
 def _subsample(inputs, targets, max_samples, gen):

@@ -56,6 +56,7 @@ import torch
 from ..assess.forecasts import choose_starts, model_dtype
 from ..assess.metrics import validity_times
 from ..data import TrajectorySet, take_windows
+from ..closures.base import LinearReadout, Memory
 from ..errors import CheckpointError, ConfigError, DataError, FitDiverged
 from ..hybrid import Forcing, HybridField, HybridFlowMap, simulate, warm_up
 from .checkpoint import has_checkpoint, load_checkpoint, load_state_checked, save_checkpoint
@@ -277,7 +278,7 @@ class TrajectoryFit:
     # -- the fit ----------------------------------------------------------------------
     def fit(self, model: HybridField | HybridFlowMap, train: TrajectorySet, val: TrajectorySet | None, ctx) -> dict:
         t_enter = time.perf_counter()
-        closure = getattr(model, "closure", None)
+        closure = model.closure
         params = [p for p in (closure.parameters() if closure is not None else []) if p.requires_grad]
         if closure is None or not params:
             raise ConfigError("fit", f"TrajectoryFit needs a closure with trainable parameters; got "
@@ -285,7 +286,7 @@ class TrajectoryFit:
                               "choose a learnable closure, or a ridge/regression fitter for this one.")
         if isinstance(model, HybridField) and ctx.solver is None:
             raise ConfigError("solver", "is missing", "give the fit context a solver, e.g. RK4(0.02).")
-        if getattr(closure, "initial_hidden_mode", None) == "warm_up" and ctx.warm_up <= 0:
+        if isinstance(closure, Memory) and closure.initial_hidden_mode == "warm_up" and ctx.warm_up <= 0:
             raise ConfigError("warm_up", f"is {ctx.warm_up} but the closure's initial_hidden is 'warm_up'",
                               "set warm_up > 0 (e.g. 5 time units), or initial_hidden='zeros'/'learned'.")
         dtype = model_dtype(model)
@@ -484,8 +485,7 @@ class TrajectoryFit:
     # -- helpers ------------------------------------------------------------------------
     def _uses_ridge(self, closure) -> bool:
         return self.readout_init == "ridge" or (
-            self.readout_init == "auto" and getattr(closure, "has_linear_readout", False)
-            and hasattr(closure, "readout_features"))
+            self.readout_init == "auto" and isinstance(closure, LinearReadout) and closure.has_linear_readout)
 
     def _initialise(self, model, train, val, ctx):
         closure = model.closure

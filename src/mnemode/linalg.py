@@ -1,4 +1,4 @@
-"""Ridge regression in closed form (shared by random-feature and reservoir readouts)."""
+"""Linear algebra shared by closures and fitters: ridge regression in closed form."""
 
 from __future__ import annotations
 
