@@ -21,6 +21,7 @@ from mnemode.data import generate
 from mnemode.errors import ConfigError, DataError, FitDiverged
 from mnemode.fitting import FitContext, ReadoutRidge, TrajectoryFit
 from mnemode.fitting.readout import drive_hidden, residual_targets
+from mnemode.fitting import trajectory as trajectory_module
 from mnemode.hybrid import HybridField, HybridFlowMap, simulate, warm_up
 from mnemode.solvers import RK4, Adaptive, FlowMap
 from mnemode.systems import thermosyphon
@@ -193,7 +194,7 @@ def test_units_and_wall_time_budget(demo):
 def test_divergence_and_bad_settings_raise_clear_errors(demo):
     system, train, val = demo
     model = HybridField(system.nominal, RecurrentClosure(3, hidden_size=2), 3).double()
-    with pytest.raises(FitDiverged, match="lower fit.lr"):
+    with pytest.raises(FitDiverged, match=r"after 3 recoveries.*fit\.lr="):
         _small_fit(steps=20, lr=1e4, lr_final=1e4, clip=1e12, horizon=2.0).fit(
             model, train, val, FitContext(solver=RK4(DT), warm_up=0.5))
     with pytest.raises(ConfigError, match="no budget"):
@@ -211,6 +212,29 @@ def test_divergence_and_bad_settings_raise_clear_errors(demo):
     with pytest.raises(ConfigError, match="linear readout"):
         ReadoutRidge().fit(HybridField(system.nominal, RecurrentClosure(3, readout="mlp"), 3).double(), train, val,
                            FitContext())
+
+
+def test_divergence_restores_the_last_good_state_and_lowers_the_rate(demo, tmp_path, monkeypatch):
+    # One update is made to diverge (step 3): the fit must return to the state validated at
+    # step 2, scale the learning rate by divergence_lr_factor, replay steps 2.. and finish.
+    system, train, val = demo
+    model = HybridField(system.nominal, RecurrentClosure(3, hidden_size=2), 3).double()
+    real_update, calls = TrajectoryFit._update, []
+
+    def update(self, model, params, prob, optimiser, gen, progress, *args):
+        calls.append((progress.step, progress.lr_scale))
+        if progress.step == 3 and progress.recoveries == 0:
+            raise trajectory_module._Diverged("the forecast loss is nan (planted)")
+        return real_update(self, model, params, prob, optimiser, gen, progress, *args)
+
+    monkeypatch.setattr(TrajectoryFit, "_update", update)
+    fit = _small_fit(steps=6, val_every=2, checkpoint_every=2, divergence_lr_factor=0.5)
+    out = fit.fit(model, train, val, FitContext(solver=RK4(DT), warm_up=0.5, checkpoint_dir=tmp_path / "ck"))
+    assert out["recoveries"] == 1 and out["steps"] == 6
+    assert calls[:5] == [(0, 1.0), (1, 1.0), (2, 1.0), (3, 1.0), (2, 0.5)]
+    state = torch.load(tmp_path / "ck" / "state.pt", weights_only=True)
+    assert state["counters"]["lr_scale"] == 0.5 and state["counters"]["recoveries"] == 1
+    assert all(bool(torch.isfinite(v).all()) for v in state["model"].values() if v.is_floating_point())
 
 
 def test_readout_ridge_matches_scikit_learn(demo):

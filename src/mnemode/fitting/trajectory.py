@@ -46,8 +46,11 @@ References:
 
 from __future__ import annotations
 
+import copy
+import logging
 import math
 import time
+from dataclasses import dataclass, field
 from typing import Sequence
 
 import numpy as np
@@ -65,6 +68,8 @@ from .regression import set_scaling
 
 __all__ = ["TrajectoryFit"]
 
+log = logging.getLogger("mnemode")
+
 _UNITS = ("time", "steps", "lyapunov")
 _READOUT_INIT = ("auto", "ridge", "offset")
 # consecutive non-finite gradients tolerated (skipped) before the fit is declared diverged
@@ -74,8 +79,82 @@ _MAX_BAD_GRADIENTS = 20
 _LR_FROM_SCRATCH, _LR_AFTER_RIDGE = 5e-3, 1e-3
 
 
-def _state_copy(module: torch.nn.Module) -> dict:
-    return {k: v.detach().clone() for k, v in module.state_dict().items()}
+#: version of the fit-settings record stored in checkpoints (1: every attribute of the fitter)
+SETTINGS_VERSION = 2
+#: the settings that define a fit; a resume under different values is refused, except for
+#: :data:`RESUME_OVERRIDABLE`, which change only how the rest of the fit proceeds
+SETTINGS_FIELDS = ("steps", "max_seconds", "batch_size", "lr", "lr_final", "weight_decay", "horizon",
+                   "curriculum", "unit", "warm_up_grad", "reforce_every", "clip", "val_every", "val_windows",
+                   "val_horizon", "gamma", "patience", "checkpoint_every", "readout_init", "ridge_alpha", "scheme",
+                   "divergence_retries", "divergence_lr_factor")
+RESUME_OVERRIDABLE = ("lr", "lr_final", "divergence_retries", "divergence_lr_factor", "max_seconds")
+
+
+def _state_copy(module) -> dict:
+    return {k: (v.detach().clone() if isinstance(v, torch.Tensor) else copy.deepcopy(v))
+            for k, v in module.state_dict().items()}
+
+
+@dataclass
+class _Problem:
+    """What the fit works on, prepared once: data tensors, window sizes, validation windows."""
+
+    states: torch.Tensor
+    forcing: torch.Tensor | None
+    x_std: torch.Tensor
+    dt: float
+    solver: object
+    n_traj: int
+    n_times: int
+    n_warm: int
+    n_grad: int
+    h0: int
+    h1: int
+    val: dict
+
+
+@dataclass
+class _Best:
+    """The best model so far, by validation score (higher is better)."""
+
+    score: tuple
+    step: int
+    error: float
+    model: dict
+
+
+@dataclass
+class _Progress:
+    """The fit's counters: everything a checkpoint needs beyond the tensors."""
+
+    step: int = 0
+    elapsed_before: float = 0.0
+    resumed_from: int | None = None
+    bad_grads: int = 0
+    patience_left: int | None = None
+    recent: list = field(default_factory=list)
+    best: _Best | None = None
+    lr_scale: float = 1.0
+    recoveries: int = 0
+    started: float = field(default_factory=time.perf_counter)
+
+    def elapsed(self) -> float:
+        return self.elapsed_before + time.perf_counter() - self.started
+
+    def counters(self) -> dict:
+        b = self.best
+        return {"elapsed": self.elapsed(), "patience_left": self.patience_left, "recent": list(self.recent),
+                "bad_gradients": self.bad_grads, "lr_scale": self.lr_scale, "recoveries": self.recoveries,
+                "best_score": None if b is None else list(b.score), "best_step": None if b is None else b.step,
+                "best_error": None if b is None else b.error}
+
+
+class _Diverged(Exception):
+    """Internal: this update produced a non-finite loss, gradient or parameter."""
+
+    def __init__(self, what: str):
+        super().__init__(what)
+        self.what = what
 
 
 class TrajectoryFit:
@@ -113,18 +192,30 @@ class TrajectoryFit:
             penalties give large cancelling weights, which amplify every change of
             the hidden field and make fine-tuning fragile.
         scheme: finite-difference scheme for the residual used by the scalings.
+        divergence_retries: on a non-finite loss, gradient or parameter, restore the
+            last good state (taken at every validation), multiply the learning rate by
+            ``divergence_lr_factor`` and go on, at most this many times; then stop.
 
-    ``fit`` returns ``train_error`` (mean loss over the last ``val_every`` steps),
-    ``val_error`` (validation normalised squared error over the final horizon, best
-    model), ``val_validity`` (median validation validity time, best model),
-    ``best_step``, ``steps``, ``stop_reason``, ``resumed_from`` and ``fit_seconds``.
+    ``fit`` returns ``train_error`` (mean training loss, the normalised squared
+    forecast error, over the last ``val_every`` steps), ``val_error`` (validation
+    normalised squared error over the final horizon, best model), ``val_validity``
+    (median validation validity time, best model), ``best_step``, ``steps``,
+    ``stop_reason``, ``resumed_from``, ``recoveries``, ``improved`` (whether any
+    update beat the starting point), ``fit_seconds``, and ``note`` when the fit never
+    improved on its start.
+
+    The best model is chosen by the validation score ``(median validity, mean
+    validity, −normalised squared error)``, compared in that order: the error term
+    keeps ranking models when every validation forecast is censored at
+    ``val_horizon`` (validity times then all equal the horizon).
 
     Raises:
         ConfigError: bad settings, or a model it cannot fit.
         DataError: trajectories too short for warm-up plus horizon.
         CheckpointError: an existing checkpoint without ``resume``, or one that
             does not match the model or the settings.
-        FitDiverged: the loss or the parameters became non-finite.
+        FitDiverged: the loss, gradients or parameters stayed non-finite after
+            ``divergence_retries`` recoveries.
     """
 
     def __init__(self, steps: int | None = 2000, max_seconds: float | None = None, batch_size: int = 32,
@@ -133,7 +224,8 @@ class TrajectoryFit:
                  warm_up_grad: float | None = 2.0, reforce_every: int | None = None, clip: float = 1.0,
                  val_every: int = 100, val_windows: int = 64, val_horizon: float = 25.0, gamma: float = 0.5,
                  patience: int | None = None, checkpoint_every: int = 100, readout_init: str = "auto",
-                 ridge_alpha: float | Sequence[float] | None = 1e-4, scheme: str = "central4"):
+                 ridge_alpha: float | Sequence[float] | None = 1e-4, scheme: str = "central4",
+                 divergence_retries: int = 3, divergence_lr_factor: float = 0.3):
         if steps is None and max_seconds is None:
             raise ConfigError("fit.steps", "and fit.max_seconds are both null: the fit has no budget",
                               "set steps (reproducible) and/or max_seconds.")
@@ -164,6 +256,10 @@ class TrajectoryFit:
                               "set a positive number of observation intervals or null.")
         if not float(clip) > 0:
             raise ConfigError("fit.clip", f"is {clip}; expected > 0", "use e.g. clip: 1.0.")
+        if int(divergence_retries) < 0 or not 0 < float(divergence_lr_factor) < 1:
+            raise ConfigError("fit.divergence_retries / fit.divergence_lr_factor",
+                              f"are {divergence_retries} and {divergence_lr_factor}; expected an integer ≥ 0 and a "
+                              "factor in (0, 1)", "use e.g. divergence_retries: 3, divergence_lr_factor: 0.3.")
         self.steps = None if steps is None else int(steps)
         self.max_seconds = None if max_seconds is None else float(max_seconds)
         self.batch_size = int(batch_size)
@@ -180,11 +276,21 @@ class TrajectoryFit:
         self.ridge_alpha = ridge_alpha if ridge_alpha is None or isinstance(ridge_alpha, (int, float)) \
             else [float(a) for a in ridge_alpha]
         self.scheme = scheme
+        self.divergence_retries, self.divergence_lr_factor = int(divergence_retries), float(divergence_lr_factor)
 
-    # -- settings -------------------------------------------------------------------
+    # -- settings ---------------------------------------------------------------------
     def settings(self) -> dict:
-        """The fitter's settings as plain data (stored in checkpoints, compared on resume)."""
-        return {k: (list(v) if isinstance(v, tuple) else v) for k, v in vars(self).items()}
+        """The fitter's settings record: plain data, versioned, stored in checkpoints.
+
+        Only the fields listed in :data:`SETTINGS_FIELDS` belong to the record, so an
+        attribute added to the class later does not silently change what a resume
+        accepts.
+        """
+        record = {}
+        for name in SETTINGS_FIELDS:
+            value = getattr(self, name)
+            record[name] = list(value) if isinstance(value, tuple) else value
+        return {"version": SETTINGS_VERSION, **record}
 
     def _to_intervals(self, value: float, dt: float, ctx) -> int:
         if self.unit == "steps":
@@ -277,7 +383,35 @@ class TrajectoryFit:
 
     # -- the fit ----------------------------------------------------------------------
     def fit(self, model: HybridField | HybridFlowMap, train: TrajectorySet, val: TrajectorySet | None, ctx) -> dict:
+        """Fit ``model``'s closure in place; returns plain diagnostics (class docstring)."""
         t_enter = time.perf_counter()
+        params = self._trainable(model, ctx)
+        prob = self._prepare(model, train, val, ctx)
+        settings = self._run_settings(model, prob, ctx)
+        lr0, lr1 = self._rates(self._uses_ridge(model.closure))
+        optimiser = torch.optim.Adam(params, lr=lr0, weight_decay=self.weight_decay)
+        gen = torch.Generator().manual_seed(int(ctx.seed))
+        progress = _Progress(patience_left=self.patience)
+        finished = self._start_or_resume(model, train, val, ctx, settings, optimiser, gen, progress)
+        if finished is not None:
+            return finished
+        self._check_finite(params, "initial parameters", progress.step, ctx)
+        progress.started = time.perf_counter()
+        if progress.best is None:
+            self._validate_and_keep(model, prob, progress, ctx)
+        good = self._snapshot(model, optimiser, gen, progress)
+        stop_reason = self._train(model, params, prob, optimiser, gen, progress, (lr0, lr1), settings, ctx, good)
+        if progress.step % self.val_every != 0 and progress.step > 0:
+            self._validate_and_keep(model, prob, progress, ctx)
+        model.load_state_dict(progress.best.model)
+        diagnostics = self._diagnostics(progress, stop_reason, ctx, t_enter)
+        self._checkpoint(model, optimiser, gen, progress, settings, ctx, finished=True, diagnostics=diagnostics)
+        return diagnostics
+
+    # -- steps of the fit ---------------------------------------------------------------
+    @staticmethod
+    def _trainable(model, ctx) -> list:
+        """The closure's trainable parameters, after checking the model can be fitted this way."""
         closure = model.closure
         params = [p for p in (closure.parameters() if closure is not None else []) if p.requires_grad]
         if closure is None or not params:
@@ -289,12 +423,15 @@ class TrajectoryFit:
         if isinstance(closure, Memory) and closure.initial_hidden_mode == "warm_up" and ctx.warm_up <= 0:
             raise ConfigError("warm_up", f"is {ctx.warm_up} but the closure's initial_hidden is 'warm_up'",
                               "set warm_up > 0 (e.g. 5 time units), or initial_hidden='zeros'/'learned'.")
+        return params
+
+    def _prepare(self, model, train: TrajectorySet, val: TrajectorySet | None, ctx) -> _Problem:
+        """Window sizes in observation intervals, data tensors and the fixed validation windows."""
         dtype = model_dtype(model)
         dt = train.dt
         if val is not None and abs(val.dt - dt) > 1e-9 * dt:
             raise DataError("validation data", f"sampled every {val.dt}, training data every {dt}",
                             "sample both on the same grid.")
-        solver = ctx.solver
         n_warm = int(round(ctx.warm_up / dt)) if model.hidden_size else 0
         n_grad = n_warm if self.warm_up_grad is None else min(n_warm, self._to_intervals(self.warm_up_grad, dt, ctx))
         h0 = max(1, self._to_intervals(self.horizon[0], dt, ctx))
@@ -304,183 +441,218 @@ class TrajectoryFit:
             raise DataError("training data", f"trajectories of {train.n_times} samples are shorter than a warm-up "
                             f"of {n_warm} plus a forecast of {max(h0, h1)} intervals",
                             "shorten warm_up or fit.horizon, or use longer trajectories.")
-        states = train.tensor(dtype)
-        forcing = None if train.forcing is None else torch.as_tensor(train.forcing, dtype=dtype)
         flat = train.states.reshape(-1, train.dim)
         x_std_np = np.maximum(flat.std(0), 1e-12)
-        x_std = torch.as_tensor(x_std_np, dtype=dtype)
         scale = float(np.sqrt(((flat - flat.mean(0)) ** 2).sum(-1).mean()))
         vset = val if val is not None else train
         vt, vs = self._val_starts(vset.n_trajectories, vset.n_times, n_warm, n_val, self.val_windows)
-        v = dict(states=vset.tensor(dtype), traj=vt, start=vs, n_warm=n_warm, n_after=n_val, dt=dt, solver=solver,
-                 forcing=None if vset.forcing is None else torch.as_tensor(vset.forcing, dtype=dtype),
+        v = dict(states=vset.tensor(dtype), traj=vt, start=vs, n_warm=n_warm, n_after=n_val, dt=dt,
+                 solver=ctx.solver, forcing=None if vset.forcing is None else torch.as_tensor(vset.forcing, dtype=dtype),
                  scale=scale, x_std=x_std_np, n_loss=min(n_val, h1))
-        writer, tag = ctx.writer, ctx.name
-        settings = {"fitter": self.settings(), "warm_up": float(ctx.warm_up), "seed": int(ctx.seed),
-                    "dt": float(dt), "dtype": str(dtype).replace("torch.", "")}
+        return _Problem(states=train.tensor(dtype),
+                        forcing=None if train.forcing is None else torch.as_tensor(train.forcing, dtype=dtype),
+                        x_std=torch.as_tensor(x_std_np, dtype=dtype), dt=dt, solver=ctx.solver,
+                        n_traj=train.n_trajectories, n_times=train.n_times, n_warm=n_warm, n_grad=n_grad,
+                        h0=h0, h1=h1, val=v)
 
-        lr0, lr1 = self._rates(self._uses_ridge(closure))
-        optimiser = torch.optim.Adam(params, lr=lr0, weight_decay=self.weight_decay)
-        gen = torch.Generator().manual_seed(int(ctx.seed))
+    def _run_settings(self, model, prob: _Problem, ctx) -> dict:
+        """The record a checkpoint stores and a resume must match: fitter settings plus run settings."""
+        return {"fitter": self.settings(), "warm_up": float(ctx.warm_up), "seed": int(ctx.seed),
+                "dt": float(prob.dt), "dtype": str(model_dtype(model)).replace("torch.", "")}
+
+    def _start_or_resume(self, model, train, val, ctx, settings, optimiser, gen, progress: _Progress) -> dict | None:
+        """Initialise a new fit, or restore a checkpointed one; the diagnostics if it had finished."""
         ckpt_dir = ctx.checkpoint_dir
-        step, elapsed_before, resumed_from, bad_grads = 0, 0.0, None, 0
-        best, patience_left, recent = None, self.patience, []
         if has_checkpoint(ckpt_dir) and not ctx.resume:
             raise CheckpointError(str(ckpt_dir), "already holds a checkpoint of an earlier fit",
                                   "resume that fit (mnemode resume RUN_DIR) or start a new run directory; "
                                   "nothing was overwritten.")
-        if has_checkpoint(ckpt_dir):
-            state = load_checkpoint(ckpt_dir)
-            self._check_settings(state, settings, ckpt_dir)
-            where = f"{ckpt_dir}/state.pt model"
-            if state["finished"]:
-                load_state_checked(model, state["model"], where)
-                out = dict(state.get("diagnostics", {}))
-                out["resumed_from"] = int(state["step"])
-                return out
-            load_state_checked(model, state["model"], where)
-            try:
-                optimiser.load_state_dict(state["optimiser"])
-                gen.set_state(state["generator"])
-                torch.set_rng_state(state["torch_rng"])
-            except (KeyError, ValueError, RuntimeError, TypeError) as exc:
-                raise CheckpointError(f"{ckpt_dir}/state.pt", f"optimiser or generator state does not fit ({exc})",
-                                      "the file is damaged or from another model; delete it to refit.") from None
-            c = state["counters"]
-            step, elapsed_before, resumed_from = int(state["step"]), float(c["elapsed"]), int(state["step"])
-            patience_left, bad_grads = c["patience_left"], int(c["bad_gradients"])
-            recent = list(c["recent"])
-            if c["best_score"] is not None:
-                best_model = state["best_model"]
-                best = {"score": tuple(c["best_score"]), "step": int(c["best_step"]), "error": float(c["best_error"]),
-                        "model": best_model}
-        else:
+        if not has_checkpoint(ckpt_dir):
             self._initialise(model, train, val, ctx)
-        self._check_finite(params, "initial parameters", step, ctx)
+            return None
+        state = load_checkpoint(ckpt_dir)
+        self._check_settings(state, settings, ckpt_dir)
+        load_state_checked(model, state["model"], f"{ckpt_dir}/state.pt model")
+        if state["finished"]:
+            out = dict(state.get("diagnostics", {}))
+            out["resumed_from"] = int(state["step"])
+            return out
+        try:
+            optimiser.load_state_dict(state["optimiser"])
+            gen.set_state(state["generator"])
+            torch.set_rng_state(state["torch_rng"])
+        except (KeyError, ValueError, RuntimeError, TypeError) as exc:
+            raise CheckpointError(f"{ckpt_dir}/state.pt", f"optimiser or generator state does not fit ({exc})",
+                                  "the file is damaged or from another model; delete it to refit.") from None
+        c = state["counters"]
+        progress.step = progress.resumed_from = int(state["step"])
+        progress.elapsed_before = float(c["elapsed"])
+        progress.patience_left, progress.bad_grads = c["patience_left"], int(c["bad_gradients"])
+        progress.recent = list(c["recent"])
+        progress.lr_scale, progress.recoveries = float(c.get("lr_scale", 1.0)), int(c.get("recoveries", 0))
+        if c["best_score"] is not None:
+            progress.best = _Best(tuple(c["best_score"]), int(c["best_step"]), float(c["best_error"]),
+                                  state["best_model"])
+        return None
 
-        t_start = time.perf_counter()
-
-        def elapsed() -> float:
-            return elapsed_before + time.perf_counter() - t_start
-
-        def validate_and_keep():
-            nonlocal best, patience_left
-            med, mean, err = self._validate(model, v)
-            if writer is not None:
-                at = max(0, step - 1)
-                writer.add_scalar(f"{tag}/val/validity_median", med, at)
-                writer.add_scalar(f"{tag}/val/validity_mean", mean, at)
-                writer.add_scalar(f"{tag}/val/error", err if math.isfinite(err) else float("nan"), at)
-            if best is None or (med, mean) > best["score"]:
-                best = {"score": (med, mean), "step": step, "error": err, "model": _state_copy(model)}
-                patience_left = self.patience
-            elif patience_left is not None:
-                patience_left -= 1
-
-        def checkpoint(finished: bool, diagnostics: dict | None = None):
-            if ckpt_dir is None:
-                return
-            state = {"step": step, "finished": finished, "settings": settings, "model": model.state_dict(),
-                     "optimiser": optimiser.state_dict(), "generator": gen.get_state(),
-                     "torch_rng": torch.get_rng_state(),
-                     "counters": {"elapsed": elapsed(), "patience_left": patience_left, "recent": list(recent),
-                                  "bad_gradients": bad_grads,
-                                  "best_score": None if best is None else list(best["score"]),
-                                  "best_step": None if best is None else best["step"],
-                                  "best_error": None if best is None else best["error"]},
-                     "best_model": None if best is None else best["model"]}
-            if diagnostics is not None:
-                state["diagnostics"] = diagnostics
-            save_checkpoint(ckpt_dir, state)
-            if writer is not None:
-                writer.flush()
-
-        if best is None:
-            validate_and_keep()
+    def _train(self, model, params, prob: _Problem, optimiser, gen, progress: _Progress, rates, settings, ctx,
+               good: dict) -> str:
+        """The optimiser loop; returns why it stopped (``budget``, ``time`` or ``early_stop``)."""
         bar = None
         if ctx.progress and self.steps is not None:
             from tqdm.auto import tqdm
-            bar = tqdm(total=self.steps, initial=step, desc=f"fitting {tag}", unit="step", leave=False)
-        n_traj = train.n_trajectories
-        stop_reason = "budget"
-        nfe_counter = solver if hasattr(solver, "nfe") else None
+            bar = tqdm(total=self.steps, initial=progress.step, desc=f"fitting {ctx.name}", unit="step", leave=False)
         try:
             while True:
-                if self.patience is not None and patience_left is not None and patience_left <= 0:
-                    stop_reason = "early_stop"
-                    break
-                progress = self._progress(step, elapsed())
-                if progress >= 1.0:
-                    stop_reason = "budget" if self.steps is not None and step >= self.steps else "time"
-                    break
-                lr = self._lr(progress, lr0, lr1)
-                for group in optimiser.param_groups:
-                    group["lr"] = lr
-                n_f = self._horizon(progress, h0, h1)
-                hi = train.n_times - (n_warm + n_f)
-                traj = torch.randint(0, n_traj, (self.batch_size,), generator=gen)
-                start = torch.randint(0, hi, (self.batch_size,), generator=gen)
-                nfe0 = nfe_counter.nfe if nfe_counter is not None else 0
-                pred, truth = self._run_windows(model, states, forcing, traj, start, n_warm, n_grad, n_f, dt,
-                                                solver, self.reforce_every)
-                loss = (((pred - truth) / x_std) ** 2).mean()
-                if not bool(torch.isfinite(loss)):
-                    raise FitDiverged(f"trajectory fit of {tag}, step {step}",
-                                      f"the forecast loss is {float(loss.detach())} "
-                                      f"(forecast of {n_f * dt:g} time units)",
-                                      f"lower fit.lr (now {lr0:g}), shorten fit.horizon (now up to "
-                                      f"{self.horizon[1]:g} {self.unit}), or use a smaller solver step.")
-                optimiser.zero_grad(set_to_none=True)
-                loss.backward()
-                loss_value = float(loss.detach())
-                grad_norm = float(torch.nn.utils.clip_grad_norm_(params, self.clip))
-                if math.isfinite(grad_norm):
-                    optimiser.step()
-                    bad_grads = 0
-                else:
-                    bad_grads += 1
-                    if bad_grads > _MAX_BAD_GRADIENTS:
-                        raise FitDiverged(f"trajectory fit of {tag}, step {step}",
-                                          f"{bad_grads} consecutive non-finite gradients",
-                                          f"lower fit.lr (now {lr0:g}), shorten fit.horizon, or use a "
-                                          "smaller solver step.")
-                self._check_finite(params, "parameters", step, ctx)
-                recent = (recent + [loss_value])[-self.val_every:]
-                if writer is not None:
-                    writer.add_scalar(f"{tag}/train/loss", loss_value, step)
-                    writer.add_scalar(f"{tag}/train/grad_norm", grad_norm, step)
-                    writer.add_scalar(f"{tag}/train/lr", lr, step)
-                    writer.add_scalar(f"{tag}/train/horizon", n_f * dt, step)
-                    if nfe_counter is not None:
-                        writer.add_scalar(f"{tag}/train/nfe", nfe_counter.nfe - nfe0, step)
-                step += 1
-                if bar is not None:
-                    bar.update(1)
-                    bar.set_postfix(loss=f"{loss_value:.3g}", horizon=f"{n_f * dt:.2g}")
-                if step % self.val_every == 0:
-                    validate_and_keep()
-                if step % self.checkpoint_every == 0:
-                    checkpoint(False)
+                if self.patience is not None and progress.patience_left is not None and progress.patience_left <= 0:
+                    return "early_stop"
+                p = self._progress(progress.step, progress.elapsed())
+                if p >= 1.0:
+                    return "budget" if self.steps is not None and progress.step >= self.steps else "time"
+                try:
+                    loss_value = self._update(model, params, prob, optimiser, gen, progress, p, rates, ctx, bar)
+                except _Diverged as exc:
+                    self._recover(model, optimiser, gen, progress, good, exc.what, ctx, bar)
+                    continue
+                progress.recent = (progress.recent + [loss_value])[-self.val_every:]
+                if progress.step % self.val_every == 0:
+                    self._validate_and_keep(model, prob, progress, ctx)
+                    good.update(self._snapshot(model, optimiser, gen, progress))
+                if progress.step % self.checkpoint_every == 0:
+                    self._checkpoint(model, optimiser, gen, progress, settings, ctx, finished=False)
         finally:
             if bar is not None:
                 bar.close()
-        if step % self.val_every != 0 and step > 0:
-            validate_and_keep()
-        model.load_state_dict(best["model"])
-        diagnostics = {
-            "train_error": float(np.mean(recent)) if recent else float("nan"),
-            "val_error": float(best["error"]),
-            "val_validity": float(best["score"][0]),
-            "val_validity_mean": float(best["score"][1]),
-            "best_step": int(best["step"]),
-            "steps": int(step),
+
+    def _update(self, model, params, prob: _Problem, optimiser, gen, progress: _Progress, p: float, rates, ctx,
+                bar) -> float:
+        """One optimiser update on a random batch of windows; returns its loss."""
+        lr = self._lr(p, *rates) * progress.lr_scale
+        for group in optimiser.param_groups:
+            group["lr"] = lr
+        n_f = self._horizon(p, prob.h0, prob.h1)
+        hi = prob.n_times - (prob.n_warm + n_f)
+        traj = torch.randint(0, prob.n_traj, (self.batch_size,), generator=gen)
+        start = torch.randint(0, hi, (self.batch_size,), generator=gen)
+        nfe_counter = prob.solver if hasattr(prob.solver, "nfe") else None  # only Adaptive counts evaluations
+        nfe0 = nfe_counter.nfe if nfe_counter is not None else 0
+        pred, truth = self._run_windows(model, prob.states, prob.forcing, traj, start, prob.n_warm, prob.n_grad, n_f,
+                                        prob.dt, prob.solver, self.reforce_every)
+        loss = (((pred - truth) / prob.x_std) ** 2).mean()
+        if not bool(torch.isfinite(loss)):
+            raise _Diverged(f"the forecast loss is {float(loss.detach())} (forecast of {n_f * prob.dt:g} time units)")
+        optimiser.zero_grad(set_to_none=True)
+        loss.backward()
+        loss_value = float(loss.detach())
+        grad_norm = float(torch.nn.utils.clip_grad_norm_(params, self.clip))
+        if math.isfinite(grad_norm):
+            optimiser.step()
+            progress.bad_grads = 0
+        else:
+            progress.bad_grads += 1
+            if progress.bad_grads > _MAX_BAD_GRADIENTS:
+                progress.bad_grads = 0
+                raise _Diverged(f"{_MAX_BAD_GRADIENTS + 1} consecutive non-finite gradients")
+        if not all(bool(torch.isfinite(q).all()) for q in params):
+            raise _Diverged("the parameters became non-finite")
+        writer, tag, step = ctx.writer, ctx.name, progress.step
+        if writer is not None:
+            writer.add_scalar(f"{tag}/train/loss", loss_value, step)
+            writer.add_scalar(f"{tag}/train/grad_norm", grad_norm, step)
+            writer.add_scalar(f"{tag}/train/lr", lr, step)
+            writer.add_scalar(f"{tag}/train/horizon", n_f * prob.dt, step)
+            if nfe_counter is not None:
+                writer.add_scalar(f"{tag}/train/nfe", nfe_counter.nfe - nfe0, step)
+        progress.step += 1
+        if bar is not None:
+            bar.update(1)
+            bar.set_postfix(loss=f"{loss_value:.3g}", horizon=f"{n_f * prob.dt:.2g}")
+        return loss_value
+
+    @staticmethod
+    def _snapshot(model, optimiser, gen, progress: _Progress) -> dict:
+        """The last good state a divergence returns to (finite by construction: taken after checks)."""
+        return {"model": _state_copy(model), "optimiser": copy.deepcopy(optimiser.state_dict()),
+                "generator": gen.get_state(), "step": progress.step, "recent": list(progress.recent),
+                "bad_grads": progress.bad_grads}
+
+    def _recover(self, model, optimiser, gen, progress: _Progress, good: dict, what: str, ctx, bar) -> None:
+        """Return to the last good state with a lower learning rate, or stop with a clear message."""
+        where = f"trajectory fit of {ctx.name}, step {progress.step}"
+        if progress.recoveries >= self.divergence_retries:
+            lr_now = self._rates(self._uses_ridge(model.closure))[0] * progress.lr_scale
+            raise FitDiverged(where, f"{what}, after {progress.recoveries} recoveries that each lowered the "
+                              f"learning rate ×{self.divergence_lr_factor:g} (start rate now {lr_now:.3g})",
+                              f"resume with a lower rate (mnemode resume RUN_DIR fit.lr={lr_now / 10:.2g}), shorten "
+                              f"fit.horizon (now up to {self.horizon[1]:g} {self.unit}), or use a smaller solver step.")
+        model.load_state_dict(good["model"])
+        optimiser.load_state_dict(copy.deepcopy(good["optimiser"]))
+        gen.set_state(good["generator"])
+        progress.step, progress.recent, progress.bad_grads = good["step"], list(good["recent"]), good["bad_grads"]
+        progress.recoveries += 1
+        progress.lr_scale *= self.divergence_lr_factor
+        if bar is not None:
+            bar.n = progress.step
+            bar.refresh()
+        log.warning(
+            "%s: %s; restored the state of step %d and lowered the learning rate ×%g (recovery %d of %d)",
+            where, what, progress.step, self.divergence_lr_factor, progress.recoveries, self.divergence_retries)
+        if ctx.writer is not None:
+            ctx.writer.add_scalar(f"{ctx.name}/train/recoveries", progress.recoveries, progress.step)
+
+    def _validate_and_keep(self, model, prob: _Problem, progress: _Progress, ctx) -> None:
+        """Score the model on the validation windows; keep it if it is the best so far."""
+        med, mean, err = self._validate(model, prob.val)
+        if ctx.writer is not None:
+            at = max(0, progress.step - 1)
+            ctx.writer.add_scalar(f"{ctx.name}/val/validity_median", med, at)
+            ctx.writer.add_scalar(f"{ctx.name}/val/validity_mean", mean, at)
+            ctx.writer.add_scalar(f"{ctx.name}/val/error", err if math.isfinite(err) else float("nan"), at)
+        score = (med, mean, -err)
+        if progress.best is None or score > _padded(progress.best.score):
+            progress.best = _Best(score, progress.step, err, _state_copy(model))
+            progress.patience_left = self.patience
+        elif progress.patience_left is not None:
+            progress.patience_left -= 1
+
+    def _checkpoint(self, model, optimiser, gen, progress: _Progress, settings, ctx, *, finished: bool,
+                    diagnostics: dict | None = None) -> None:
+        """Write the fit's state for an exact resume (tensors and plain data only)."""
+        if ctx.checkpoint_dir is None:
+            return
+        state = {"step": progress.step, "finished": finished, "settings": settings, "model": model.state_dict(),
+                 "optimiser": optimiser.state_dict(), "generator": gen.get_state(),
+                 "torch_rng": torch.get_rng_state(), "counters": progress.counters(),
+                 "best_model": None if progress.best is None else progress.best.model}
+        if diagnostics is not None:
+            state["diagnostics"] = diagnostics
+        save_checkpoint(ctx.checkpoint_dir, state)
+        if ctx.writer is not None:
+            ctx.writer.flush()
+
+    def _diagnostics(self, progress: _Progress, stop_reason: str, ctx, t_enter: float) -> dict:
+        best = progress.best
+        out = {
+            "train_error": float(np.mean(progress.recent)) if progress.recent else float("nan"),
+            "val_error": float(best.error),
+            "val_validity": float(best.score[0]),
+            "val_validity_mean": float(best.score[1]),
+            "best_step": int(best.step),
+            "steps": int(progress.step),
             "stop_reason": stop_reason,
-            "resumed_from": resumed_from,
+            "resumed_from": progress.resumed_from,
+            "recoveries": int(progress.recoveries),
+            "improved": bool(best.step > 0),
             "warm_up": float(ctx.warm_up),
-            "fit_seconds": float(elapsed() if resumed_from is not None else time.perf_counter() - t_enter),
+            "fit_seconds": float(progress.elapsed() if progress.resumed_from is not None
+                                 else time.perf_counter() - t_enter),
         }
-        checkpoint(True, diagnostics)
-        return diagnostics
+        if best.step == 0:
+            start = "ridge-fitted readout" if self.readout_init != "offset" else "initial model"
+            out["note"] = (f"no update improved on the {start} it started from (validation score); the cheaper "
+                           "fit alone (fit=readout_ridge for a linear readout, fit=derivative for a memoryless "
+                           "closure) gives the same model in seconds")
+        return out
 
     # -- helpers ------------------------------------------------------------------------
     def _uses_ridge(self, closure) -> bool:
@@ -500,7 +672,8 @@ class TrajectoryFit:
         for p in params:
             if not bool(torch.isfinite(p).all()):
                 raise FitDiverged(f"trajectory fit of {ctx.name}, step {step}", f"{what} became non-finite",
-                                  "lower fit.lr, shorten fit.horizon, or use a smaller solver step.")
+                                  "check the data for extreme values (the closure is scaled from them), shorten "
+                                  "fit.horizon, or use a smaller solver step.")
 
     @staticmethod
     def _check_settings(state, settings, ckpt_dir):
@@ -511,8 +684,19 @@ class TrajectoryFit:
                                       f"now {key}={settings[key]!r}",
                                       "resume with the settings of the interrupted run, or start a new run.")
         old, new = saved.get("fitter", {}), settings["fitter"]
+        if old.get("version", 1) != SETTINGS_VERSION:
+            # version 1 stored every attribute; compare the fields both versions know
+            old = {k: v for k, v in old.items() if k in SETTINGS_FIELDS}
+            new = {k: v for k, v in new.items() if k in old}
         for key in sorted(set(old) | set(new)):
+            if key == "version" or key in RESUME_OVERRIDABLE:
+                continue
             if old.get(key) != new.get(key):
                 raise CheckpointError(f"{ckpt_dir}/state.pt", f"was written with fit.{key}={old.get(key)!r}, "
                                       f"now fit.{key}={new.get(key)!r}",
                                       "resume with the settings of the interrupted run, or start a new run.")
+
+
+def _padded(score: tuple) -> tuple:
+    """A stored score as a 3-tuple (checkpoints of version 1 held (median, mean) only)."""
+    return tuple(score) + (-math.inf,) * (3 - len(score))
