@@ -112,7 +112,7 @@ def test_rollout_command_writes_a_trajectory(tiny_run):
 def test_killed_run_resumes_and_finishes(tmp_path):
     env = dict(os.environ, MNEMODE_RUNS=str(tmp_path / "runs"))
     run = tmp_path / "runs" / "killed"
-    args = [sys.executable, "-m", "mnemode", "fit", "experiment=tiny", "progress=false", "baselines=none",
+    args = [sys.executable, "-m", "mnemode", "fit", "experiment=tiny", "progress=false", "compare=none",
             "fit.steps=200", "fit.checkpoint_every=5", f"hydra.run.dir={run}"]
     proc = subprocess.Popen(args, cwd=tmp_path, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
     ckpt = run / "checkpoints" / "memory"
@@ -162,7 +162,7 @@ def test_bring_your_own_physics_example_runs_end_to_end(tmp_path):
 
 
 def test_multirun_sweep_writes_one_finished_run_per_job_and_resume_skips_them(tmp_path):
-    r = mnemode("fit", "-m", "experiment=tiny", "progress=false", "baselines=none", "fit.steps=4",
+    r = mnemode("fit", "-m", "experiment=tiny", "progress=false", "compare=none", "fit.steps=4",
                 "system.wall_response_time=0.1,1.0", "hydra.sweep.dir=runs/sweep", cwd=tmp_path)
     assert r.returncode == 0, r.stderr[-3000:]
     jobs = sorted((tmp_path / "runs" / "sweep").glob("job*"))
@@ -205,7 +205,7 @@ def test_forcing_inputs_reach_physics_and_closure_through_the_main_job(tmp_path)
     csv = data.save(tmp_path / "driven.csv")
     r = mnemode("run", "system=custom", "system.nominal._target_=circuit_physics.DrivenVanDerPolCircuit",
                 "system.state_names=[v,i]", "data=file", f"data.path={csv}", "data.forcing_columns=[drive]",
-                "closure=random_features", "fit=derivative", "baselines=none", "model.name=memoryless",
+                "closure=random_features", "fit=derivative", "compare=none", "model.name=memoryless",
                 "warm_up=0", "assess.n_starts=10", "assess.horizon=20", "assess.free_run_length=20",
                 "assess.acf_max_lag=1", "progress=false", "solver.step=0.05",
                 cwd=tmp_path, env_extra={"PYTHONPATH": str(example)})

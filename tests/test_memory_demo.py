@@ -27,7 +27,7 @@ from mnemode.assess.forecasts import choose_starts, run_forecasts
 from mnemode.assess.metrics import validity_times
 from mnemode.closures import RandomFeatureClosure, RecurrentClosure, ReservoirClosure
 from mnemode.data import generate
-from mnemode.fitting import DerivativeRegression, FitContext, ReadoutRidge, TrajectoryFit
+from mnemode.fitting import DerivativeFit, FitContext, ReadoutRidgeFit, TrajectoryFit
 from mnemode.hybrid import HybridField
 from mnemode.solvers import RK4
 from mnemode.systems import thermosyphon
@@ -66,7 +66,7 @@ def rms_scale(train) -> float:
 def memoryless_baseline(system, train, val, lengthscale=(1.0, 2.0, 4.0), ridge=(1e-8, 1e-6, 1e-4)):
     closure = RandomFeatureClosure(3, n_features=300, lengthscale=list(lengthscale), ridge=list(ridge))
     model = HybridField(system.nominal, closure, 3).double()
-    DerivativeRegression().fit(model, train, val, FitContext(solver=RK4(DT), warm_up=WARM_UP))
+    DerivativeFit().fit(model, train, val, FitContext(solver=RK4(DT), warm_up=WARM_UP))
     return model
 
 
@@ -83,7 +83,7 @@ def test_memory_closure_beats_memoryless_twice_and_nominal_tenfold():
     ctx = FitContext(solver=RK4(DT), warm_up=WARM_UP, seed=0)
 
     memory = HybridField(system.nominal, ReservoirClosure(3, kind="filter_bank"), 3).double()
-    fit = ReadoutRidge(alpha=[1e-8, 1e-6, 1e-4]).fit(memory, train, val, ctx)
+    fit = ReadoutRidgeFit(ridge=[1e-8, 1e-6, 1e-4]).fit(memory, train, val, ctx)
     memoryless = memoryless_baseline(system, train, val, lengthscale=(1.0, 2.0), ridge=(1e-8, 1e-6))
     nominal = HybridField(system.nominal, None, 3)
 
@@ -123,7 +123,7 @@ def _measure(log_path: str, budget_seconds: float, steps: int) -> None:
 
     t = time.perf_counter()
     bank = HybridField(system.nominal, ReservoirClosure(3, kind="filter_bank"), 3).double()
-    ReadoutRidge(alpha=[1e-8, 1e-6, 1e-4]).fit(bank, train, val, FitContext(solver=RK4(DT), warm_up=WARM_UP))
+    ReadoutRidgeFit(ridge=[1e-8, 1e-6, 1e-4]).fit(bank, train, val, FitContext(solver=RK4(DT), warm_up=WARM_UP))
     log(f"filter bank + ridge ({time.perf_counter() - t:.1f} s): "
         f"validity {quartiles(validity(bank, test, scale, n_starts))}")
 

@@ -18,7 +18,7 @@ def test_config_tree_is_the_top_level_configs_folder():
     # In a checkout the package's configs are the top-level configs/ folder itself.
     assert (config_dir() / "mnemode.yaml").exists()
     assert {p.name for p in config_dir().iterdir() if p.is_dir()} >= {
-        "system", "data", "closure", "fit", "baselines", "assess", "export", "experiment"}
+        "system", "data", "closure", "fit", "compare", "assess", "export", "experiment"}
 
 
 @pytest.mark.slow

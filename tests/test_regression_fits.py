@@ -16,7 +16,7 @@ from mnemode.closures import (Recurrent, GaussianProcessClosure, MLPClosure, Ran
                               RingLocalClosure)
 from mnemode.data import TrajectorySet, generate
 from mnemode.errors import ConfigError
-from mnemode.fitting import (DerivativeRegression, FitContext, FlowMapRegression, derivative_targets,
+from mnemode.fitting import (DerivativeFit, FitContext, FlowMapFit, derivative_targets,
                              flow_map_targets, set_scaling)
 from mnemode.hybrid import HybridField, HybridFlowMap, simulate
 from mnemode.solvers import RK4, FlowMap
@@ -73,7 +73,7 @@ def test_fit_returns_plain_diagnostics_and_logs_to_tensorboard(small_l63, tmp_pa
     closure = MLPClosure(3, width=8, epochs=3).double()
     writer = SummaryWriter(str(tmp_path))
     try:
-        out = DerivativeRegression().fit(HybridField(system.nominal, closure, 3), train, val,
+        out = DerivativeFit().fit(HybridField(system.nominal, closure, 3), train, val,
                                          FitContext(writer=writer, name="l63", progress=True))
     finally:
         writer.close()
@@ -101,17 +101,17 @@ class _WithMemory(Recurrent):
 def test_wrong_model_forms_raise_config_errors(small_l63):
     system, ts = small_l63
     with pytest.raises(ConfigError, match="TrajectoryFit or a reservoir"):
-        DerivativeRegression().fit(HybridField(system.nominal, _WithMemory(3), 3), ts)
+        DerivativeFit().fit(HybridField(system.nominal, _WithMemory(3), 3), ts)
     flow_model = HybridFlowMap(FlowMap(system.nominal, ts.dt, RK4(0.002)), RandomFeatureClosure(3), 3, ts.dt)
-    with pytest.raises(ConfigError, match="FlowMapRegression"):
-        DerivativeRegression().fit(flow_model, ts)
+    with pytest.raises(ConfigError, match="FlowMapFit"):
+        DerivativeFit().fit(flow_model, ts)
     wrong_dt = HybridFlowMap(FlowMap(system.nominal, 0.02, RK4(0.002)), RandomFeatureClosure(3), 3, 0.02)
     with pytest.raises(ConfigError, match="sampling interval"):
-        FlowMapRegression().fit(wrong_dt, ts)
+        FlowMapFit().fit(wrong_dt, ts)
     with pytest.raises(ConfigError, match="forcing_dim: 0"):
-        DerivativeRegression().fit(HybridField(system.nominal, RandomFeatureClosure(3, forcing_dim=1), 3), ts)
+        DerivativeFit().fit(HybridField(system.nominal, RandomFeatureClosure(3, forcing_dim=1), 3), ts)
     with pytest.raises(ConfigError, match="scheme"):
-        DerivativeRegression(scheme="central6")
+        DerivativeFit(scheme="central6")
     with pytest.raises(ConfigError, match="activation"):
         MLPClosure(3, activation="swish2")
 
@@ -133,7 +133,7 @@ class _ForcedNominal(nn.Module):
         return torch.stack((-x[..., 0] + u[..., 0], -0.5 * x[..., 1] + x[..., 0]), -1)
 
 
-@pytest.mark.parametrize("fitter", [DerivativeRegression(), FlowMapRegression(psi0_step=0.002)])
+@pytest.mark.parametrize("fitter", [DerivativeFit(), FlowMapFit(psi0_step=0.002)])
 def test_forcing_inputs_reach_the_physics_and_the_closure(fitter):
     omega = torch.linspace(0.5, 2.0, 6, dtype=torch.float64)
     dt, n = 0.02, 1500
@@ -232,15 +232,15 @@ def test_lorenz63_correction_recovers_the_missing_rho_term(l63):
     x = torch.as_tensor(test.states.reshape(-1, 3))
     truth = _missing_l63(x)
     errors = {}
-    for name, fitter in (("derivative", DerivativeRegression(max_samples=20000)),
-                         ("flow map", FlowMapRegression(max_samples=20000))):
+    for name, fitter in (("derivative", DerivativeFit(max_samples=20000)),
+                         ("flow map", FlowMapFit(max_samples=20000))):
         closure = RandomFeatureClosure(3, n_features=300, lengthscale=[1.0, 2.0, 4.0], ridge=1e-10).double()
         fitter.fit(HybridField(system.nominal, closure, 3), train, None, FitContext(seed=0))
         with torch.no_grad():
             errors[name] = float((closure.correction(x) - truth).norm() / truth.norm())
     # the discrete flow-map closure (for x_{n+1} = Ψ0 + Δt·m) is not the vector-field term: O(Δt) apart
     closure = RandomFeatureClosure(3, n_features=300, lengthscale=[1.0, 2.0, 4.0], ridge=1e-10).double()
-    FlowMapRegression(max_samples=20000).fit(
+    FlowMapFit(max_samples=20000).fit(
         HybridFlowMap(FlowMap(system.nominal, 0.01, RK4(0.001)), closure, 3, 0.01), train, None, FitContext())
     with torch.no_grad():
         errors["discrete flow map"] = float((closure.correction(x) - truth).norm() / truth.norm())
@@ -265,8 +265,8 @@ def test_coarse_sampling_keeps_the_flow_map_fit_and_breaks_the_derivative_fit(l6
         with torch.no_grad():
             nominal_step = psi0(pairs[0]) - pairs[1]
         # the GP keeps 300 pairs; 5000 are enough for the fitters' error estimates
-        for name, fitter in (("derivative", DerivativeRegression(max_samples=5000)),
-                             ("flow map", FlowMapRegression(max_samples=5000))):
+        for name, fitter in (("derivative", DerivativeFit(max_samples=5000)),
+                             ("flow map", FlowMapFit(max_samples=5000))):
             closure = GaussianProcessClosure(3, max_points=300, n_restarts=0)
             if name == "derivative":
                 model = HybridField(system.nominal, closure.double(), 3)
@@ -301,7 +301,7 @@ def test_demo_memoryless_hybrid_outlasts_the_nominal_model(demo_data):
     system, train, test = demo_data
     closure = RandomFeatureClosure(3, n_features=300, lengthscale=[1.0, 2.0, 4.0], ridge=1e-8).double()
     model = HybridField(system.nominal, closure, 3)
-    info = DerivativeRegression(max_samples=20000).fit(model, train, None, FitContext(seed=0))
+    info = DerivativeFit(max_samples=20000).fit(model, train, None, FitContext(seed=0))
     truth = torch.as_tensor(test.states)
     n, dt = truth.shape[0] - 1, test.dt
     with torch.no_grad():

@@ -11,7 +11,7 @@ import torch
 from mnemode.closures import GaussianProcessClosure, MLPClosure, RandomFeatureClosure, RingLocalClosure
 from mnemode.data import generate
 from mnemode.errors import ConfigError
-from mnemode.fitting import DerivativeRegression, FitContext, set_scaling
+from mnemode.fitting import DerivativeFit, FitContext, set_scaling
 from mnemode.hybrid import HybridField
 from mnemode.systems import lorenz96_two_scale
 
@@ -106,7 +106,7 @@ def test_ring_closure_learns_the_two_scale_coupling(two_scale_data):
     ring = RingLocalClosure(K, inner=functools.partial(RandomFeatureClosure, n_features=200,
                                                        lengthscale=[1.0, 2.0, 4.0], ridge=1e-6),
                             neighbours=2).double()
-    info = DerivativeRegression(max_samples=5000).fit(HybridField(system.nominal, ring, K), train, None,
+    info = DerivativeFit(max_samples=5000).fit(HybridField(system.nominal, ring, K), train, None,
                                                       FitContext(seed=0))
     x = torch.as_tensor(test.states.reshape(-1, K))
     truth = _coupling(test).reshape(-1, K)

@@ -19,7 +19,7 @@ from sklearn.linear_model import Ridge
 from mnemode.closures import GRUFlowClosure, MLPClosure, RecurrentClosure, ReservoirClosure
 from mnemode.data import generate
 from mnemode.errors import ConfigError, DataError, FitDiverged
-from mnemode.fitting import FitContext, ReadoutRidge, TrajectoryFit
+from mnemode.fitting import FitContext, ReadoutRidgeFit, TrajectoryFit
 from mnemode.fitting.readout import drive_hidden, residual_targets
 from mnemode.fitting import trajectory as trajectory_module
 from mnemode.hybrid import HybridField, HybridFlowMap, simulate, warm_up
@@ -210,7 +210,7 @@ def test_divergence_and_bad_settings_raise_clear_errors(demo):
         _small_fit(horizon=100.0).fit(HybridField(system.nominal, RecurrentClosure(3), 3).double(), train, val,
                                       FitContext(solver=RK4(DT), warm_up=1.0))
     with pytest.raises(ConfigError, match="linear readout"):
-        ReadoutRidge().fit(HybridField(system.nominal, RecurrentClosure(3, readout="mlp"), 3).double(), train, val,
+        ReadoutRidgeFit().fit(HybridField(system.nominal, RecurrentClosure(3, readout="mlp"), 3).double(), train, val,
                            FitContext())
 
 
@@ -243,7 +243,7 @@ def test_readout_ridge_matches_scikit_learn(demo):
     model = HybridField(system.nominal, closure, 3).double()
     alpha, warm = 1e-5, 2.0
     ctx = FitContext(solver=RK4(DT), warm_up=warm)
-    out = ReadoutRidge(alpha=alpha).fit(model, train, val, ctx)
+    out = ReadoutRidgeFit(ridge=alpha).fit(model, train, val, ctx)
     assert out["val_error"] < 0.5  # the filter bank explains most of the wall's heat (common practice bound)
     # reference: scikit-learn's Ridge on the same features; an unpenalised intercept equals
     # sklearn's fit_intercept=True, and our per-sample penalty α is sklearn's α·N
@@ -264,10 +264,10 @@ def test_readout_ridge_initialises_a_recurrent_closure_for_fine_tuning(demo):
     system, train, val = demo
     closure = RecurrentClosure(3, hidden_size=6, input_init="filter_bank")
     model = HybridField(system.nominal, closure, 3).double()
-    ridge_out = ReadoutRidge(alpha=1e-6).fit(model, train, val, FitContext(solver=RK4(DT), warm_up=1.0))
+    ridge_out = ReadoutRidgeFit(ridge=1e-6).fit(model, train, val, FitContext(solver=RK4(DT), warm_up=1.0))
     bank = ReservoirClosure(3, hidden_size=6, kind="filter_bank")
     twin = HybridField(system.nominal, bank, 3).double()
-    twin_out = ReadoutRidge(alpha=1e-6).fit(twin, train, val, FitContext(solver=RK4(DT), warm_up=1.0))
+    twin_out = ReadoutRidgeFit(ridge=1e-6).fit(twin, train, val, FitContext(solver=RK4(DT), warm_up=1.0))
     # a leaky closure initialised as a filter bank has the same hidden field as the reservoir, so the
     # ridge readouts explain the residual equally well
     assert ridge_out["val_error"] == pytest.approx(twin_out["val_error"], rel=1e-6)

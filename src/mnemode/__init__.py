@@ -8,7 +8,7 @@ from .errors import MnemodeError
 from .hybrid import HybridField, HybridFlowMap, simulate, warm_up
 from .solvers import RK4, Adaptive, Euler, FlowMap
 
-__version__ = "0.1.0"
+from .version import __version__
 
 __all__ = [
     "TrajectorySet", "generate", "load_trajectories", "finite_difference", "Normalisation",

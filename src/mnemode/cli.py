@@ -60,7 +60,7 @@ def main(argv: list[str] | None = None) -> None:
         print(USAGE)
         return
     if argv[0] in ("--version", "version"):
-        from . import __version__
+        from .version import __version__
 
         print(f"mnemode {__version__}")
         return
@@ -137,8 +137,8 @@ def _dispatch(command: str, cfg, run_dir: Path) -> None:
 
 def _memory_report(report: dict) -> str:
     advice = {
-        "memory": "train a memory closure: closure=leaky_memory fit=trajectory "
-                  "(or closure=filter_bank fit=readout_ridge for an answer in seconds)",
+        "memory": "train a memory closure: closure=recurrent_leaky fit=trajectory "
+                  "(or closure=reservoir_filter_bank fit=readout_ridge for an answer in seconds)",
         "memoryless": "a memoryless closure suffices: closure=random_features fit=derivative "
                       "(fit=flow_map if the sampling is coarse)",
     }

@@ -339,7 +339,7 @@ def _plain(obj, what: str):
 
 
 def _versions(onnx: bool) -> dict:
-    from . import __version__
+    from .version import __version__
 
     v = {"mnemode": __version__, "torch": torch.__version__, "numpy": np.__version__,
          "python": platform.python_version()}

@@ -18,7 +18,7 @@ import torch
 from hydra.utils import instantiate
 from omegaconf import DictConfig, OmegaConf
 
-from .closures.base import Closure, DiscreteRecurrent, Recurrent
+from .closures.base import Closure, DiscreteRecurrent, Memory, Recurrent
 from .data import TrajectorySet, generate, load_trajectories
 from .errors import CheckpointError, ConfigError, MnemodeError
 from .fitting.checkpoint import checkpoint_step
@@ -29,7 +29,7 @@ from .solvers import RK4, FlowMap, Solver
 from .systems.base import System
 
 __all__ = [
-    "DataSplits", "compose_config", "make_system", "prepare_data", "model_specs", "build_model",
+    "DataSplits", "compose_config", "make_system", "prepare_data", "main_model_name", "model_specs", "build_model",
     "fit_models", "save_model", "load_model", "assess_run", "export_run", "run_pipeline",
 ]
 
@@ -174,20 +174,38 @@ def run_data(run: RunDir, cfg: DictConfig, system: System) -> DataSplits:
 
 # -- models ------------------------------------------------------------------------
 
+def main_model_name(cfg: DictConfig) -> str:
+    """The main model's name: ``model.name``, or what it is (``memory``, ``memoryless``, ``data_only``)."""
+    name = cfg.model.get("name")
+    if name:
+        return str(name)
+    if not cfg.model.get("physics", True):
+        return "data_only"
+    target = (cfg.get("closure") or {}).get("_target_")
+    try:
+        from hydra.utils import get_class
+
+        memory = issubclass(get_class(str(target)), Memory)
+    except Exception:  # an unresolvable target is reported when the closure is built
+        memory = False
+    return "memory" if memory else "memoryless"
+
+
 def model_specs(cfg: DictConfig) -> dict[str, DictConfig]:
-    """Every model the run fits: the main one first, then the baselines."""
+    """Every model the run fits, each as ``{form, physics, closure, fit[, psi0_step]}``: the main one
+    first, then those fitted to compare with it (config group ``compare``)."""
     def resolved(node):  # detached from the root, so interpolations (e.g. ${data.dt}) are resolved first
         return None if node is None else OmegaConf.to_container(node, resolve=True)
 
     main = OmegaConf.create({
-        "form": cfg.model.form, "physics": cfg.model.physics,
-        "closure": resolved(cfg.closure), "fit": resolved(cfg.fit),
+        "form": cfg.model.get("form", "continuous"), "physics": cfg.model.get("physics", True),
+        "psi0_step": cfg.model.get("psi0_step"), "closure": resolved(cfg.closure), "fit": resolved(cfg.fit),
     })
-    specs = {str(cfg.model.name): main}
-    for name, spec in (cfg.get("baselines") or {}).items():
+    specs = {main_model_name(cfg): main}
+    for name, spec in (cfg.get("compare") or {}).items():
         if name in specs:
-            raise ConfigError(f"baselines.{name}", "has the same name as the main model",
-                              "rename the main model (model.name=...) or the baseline.")
+            raise ConfigError(f"compare.{name}", "has the same name as the main model",
+                              "rename the main model (model.name=...) or that compared model.")
         specs[str(name)] = OmegaConf.create(resolved(spec))
     return specs
 
@@ -217,7 +235,7 @@ def build_model(spec: DictConfig, system: System, dt: float, dtype=torch.float64
     elif form == "discrete":
         if isinstance(closure, Recurrent):
             raise ConfigError(f"{what}", f"{type(closure).__name__} has a continuous hidden field but the model "
-                              "form is 'discrete'", "use closure=gru_flow or filter_bank_flow for a discrete model "
+                              "form is 'discrete'", "use closure=gru_flow or closure=reservoir_flow for a discrete model "
                               "with memory, or set model.form=continuous.")
         if n_forcing:
             raise ConfigError(f"{what}", f"the data have {n_forcing} forcing input(s) and the model form is "
@@ -388,7 +406,7 @@ def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | Non
     cfg = cfg if cfg is not None else run.load_config()
     from .export import check_exportable, export_simulator
 
-    name = model_name or cfg.export.get("model") or str(cfg.model.name)
+    name = model_name or cfg.export.get("model") or main_model_name(cfg)
     specs = model_specs(cfg)
     if name not in specs:
         raise ConfigError("export.model", f"is {name!r}, which this run did not fit (models: {list(specs)})",

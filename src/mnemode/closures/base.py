@@ -172,6 +172,9 @@ class RegressionFittable(metaclass=ABCMeta):
 class LinearReadout(metaclass=ABCMeta):
     """A closure whose output is linear in :meth:`readout_features`, so ridge regression sets its readout."""
 
+    #: ridge penalty (or candidates) the closure suggests for its readout; ``None``: the fitter's default
+    ridge: float | list | None = None
+
     @property
     def has_linear_readout(self) -> bool:
         """Whether this instance's readout is linear (a configurable readout may be an MLP instead)."""

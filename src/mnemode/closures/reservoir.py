@@ -1,7 +1,7 @@
 """Reservoir closure: a fixed hidden field driven by the observations, a ridge-fitted readout.
 
 The hidden field has no trained weights (they are buffers); only the readout is
-learned, in closed form, by :class:`mnemode.fitting.ReadoutRidge` (seconds, no
+learned, in closed form, by :class:`mnemode.fitting.ReadoutRidgeFit` (seconds, no
 backpropagation). Two kinds:
 
 * ``'filter_bank'`` — a bank of leaky integrators, one per input and time
@@ -66,7 +66,7 @@ class _Reservoir(Memory, LinearReadout):
         input_scale: ``random`` only: scale of the input weights ``U``.
         bias_scale: ``random`` only: scale of the bias ``b``.
         quadratic: add the pairwise products of ``[x̃, r]`` to the readout features.
-        ridge: ridge penalty α per sample used by :class:`~mnemode.fitting.ReadoutRidge`,
+        ridge: ridge penalty α per sample used by :class:`~mnemode.fitting.ReadoutRidgeFit`,
             or a list of them from which the fit picks the best on validation data.
         forcing_dim: forcing inputs the closure sees (0: ignores ``u``).
         seed: seeds the random weights.

@@ -4,14 +4,14 @@ from .context import FitContext
 
 __all__ = ["FitContext"]
 
-from .regression import DerivativeRegression, FlowMapRegression, set_scaling
+from .regression import DerivativeFit, FlowMapFit, set_scaling
 from .targets import derivative_targets, flow_map_targets
 
-__all__ += ["DerivativeRegression", "FlowMapRegression", "set_scaling", "derivative_targets", "flow_map_targets"]
+__all__ += ["DerivativeFit", "FlowMapFit", "set_scaling", "derivative_targets", "flow_map_targets"]
 
 from .checkpoint import checkpoint_step
 from .memory_diagnostic import memory_need
-from .readout import ReadoutRidge
+from .readout import ReadoutRidgeFit
 from .trajectory import TrajectoryFit
 
-__all__ += ["TrajectoryFit", "ReadoutRidge", "checkpoint_step", "memory_need"]
+__all__ += ["TrajectoryFit", "ReadoutRidgeFit", "checkpoint_step", "memory_need"]

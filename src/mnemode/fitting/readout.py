@@ -43,7 +43,7 @@ from ..linalg import ridge_solve
 from .regression import relative_error, set_scaling
 from .targets import derivative_targets, flow_map_targets
 
-__all__ = ["ReadoutRidge", "residual_targets", "drive_hidden"]
+__all__ = ["ReadoutRidgeFit", "residual_targets", "drive_hidden"]
 
 # penalties tried when neither the fitter nor the closure names one (chosen on validation data)
 DEFAULT_ALPHAS = (1e-8, 1e-6, 1e-4)
@@ -120,7 +120,7 @@ def _features(model, data: TrajectorySet, solver, scheme, discard: int, dtype, t
     return phi.reshape(-1, phi.shape[-1]), rho.reshape(-1, rho.shape[-1])
 
 
-class ReadoutRidge:
+class ReadoutRidgeFit:
     """Fit a closure's linear readout by ridge regression on observation-driven hidden states.
 
     The maths is in the module docstring. Works for closures that expose
@@ -130,30 +130,30 @@ class ReadoutRidge:
     hidden field is then kept as initialised, e.g. a filter bank).
 
     Args:
-        alpha: ridge penalty per sample, or a list of candidates of which the one
+        ridge: ridge penalty per sample, or a list of candidates of which the one
             with the smallest validation error is kept; ``None`` uses the closure's
             ``ridge`` attribute if it has one, else ``DEFAULT_ALPHAS``.
         scheme: finite-difference scheme for ``ẋ̂`` (see :data:`mnemode.data.FD_SCHEMES`).
 
     ``fit`` returns ``train_error`` and ``val_error`` as relative RMS errors of the
     residual targets (:func:`mnemode.fitting.regression.relative_error`: 0 is
-    perfect, 1 no better than the mean), ``alpha``, ``n_samples`` and ``fit_seconds``.
+    perfect, 1 no better than the mean), ``ridge``, ``n_samples`` and ``fit_seconds``.
     """
 
-    def __init__(self, alpha: float | Sequence[float] | None = None, scheme: str = "central4"):
-        self.alpha, self.scheme = alpha, scheme
+    def __init__(self, ridge: float | Sequence[float] | None = None, scheme: str = "central4"):
+        self.ridge, self.scheme = ridge, scheme
 
     def _alphas(self, closure) -> list[float]:
-        a = self.alpha
+        a = self.ridge
         if a is None:
-            a = getattr(closure, "ridge", DEFAULT_ALPHAS)
+            a = closure.ridge if closure.ridge is not None else DEFAULT_ALPHAS
         try:
             values = [float(v) for v in a] if hasattr(a, "__len__") and not isinstance(a, str) else [float(a)]
         except (TypeError, ValueError):
             values = []
         if not values or any(not np.isfinite(v) or v < 0 for v in values):
-            raise ConfigError("alpha", f"is {a!r}; expected a penalty ≥ 0 or a list of them",
-                              "use e.g. alpha: 1e-6 or alpha: [1e-8, 1e-6, 1e-4].")
+            raise ConfigError("ridge", f"is {a!r}; expected a penalty ≥ 0 or a list of them",
+                              "use e.g. ridge: 1e-6 or ridge: [1e-8, 1e-6, 1e-4].")
         return values
 
     def fit(self, model, train: TrajectorySet, val: TrajectorySet | None, ctx) -> dict:
@@ -161,7 +161,7 @@ class ReadoutRidge:
         closure = model.closure
         if not (isinstance(closure, LinearReadout) and closure.has_linear_readout):
             name = type(closure).__name__ if closure is not None else "no closure"
-            raise ConfigError("fit", f"ReadoutRidge needs a closure with a linear readout over fixed features; "
+            raise ConfigError("fit", f"ReadoutRidgeFit needs a closure with a linear readout over fixed features; "
                               f"got {name}", "use a ReservoirClosure or a RecurrentClosure with readout='linear', "
                               "or fit with TrajectoryFit.")
         dtype = model_dtype(model)
@@ -187,8 +187,8 @@ class ReadoutRidge:
                 best = (score, alpha, w, train_err, val_err)
         if best is None:
             raise FitDiverged(f"ridge readout of {ctx.name}", "every penalty gave a non-finite fit",
-                              "check the data for outliers or raise alpha.")
+                              "check the data for outliers or raise the ridge penalty (ridge).")
         _, alpha, w, train_err, val_err = best
         closure.set_readout(w)
-        return {"train_error": train_err, "val_error": val_err, "alpha": alpha,
+        return {"train_error": train_err, "val_error": val_err, "ridge": alpha,
                 "n_samples": int(phi.shape[0]), "fit_seconds": time.perf_counter() - t0}

@@ -37,7 +37,7 @@ from ..solvers import RK4, FlowMap
 from .context import FitContext
 from .targets import derivative_targets, flow_map_targets
 
-__all__ = ["DerivativeRegression", "FlowMapRegression", "set_scaling", "relative_error"]
+__all__ = ["DerivativeFit", "FlowMapFit", "set_scaling", "relative_error"]
 
 _REGRESSION_CLOSURES = "GaussianProcessClosure, RandomFeatureClosure, MLPClosure or RingLocalClosure"
 
@@ -204,7 +204,7 @@ class _RegressionFit:
         return result
 
 
-class DerivativeRegression(_RegressionFit):
+class DerivativeFit(_RegressionFit):
     """Fit a memoryless closure of a continuous hybrid model to ``ẋ̂ − f0(x)``.
 
     Args:
@@ -215,7 +215,7 @@ class DerivativeRegression(_RegressionFit):
 
     The model must be a :class:`~mnemode.hybrid.HybridField` (its physics gives
     ``f0``; ``None`` physics fits a data-only model). Sparse observations make
-    finite differences poor: use :class:`FlowMapRegression` then.
+    finite differences poor: use :class:`FlowMapFit` then.
     """
 
     name = "derivative_regression"
@@ -229,12 +229,12 @@ class DerivativeRegression(_RegressionFit):
 
     def targets(self, model, ts):
         if not isinstance(model, HybridField):
-            raise ConfigError("DerivativeRegression model", f"is a {type(model).__name__}; derivative targets "
-                              "correct a vector field", "use FlowMapRegression for a HybridFlowMap.")
+            raise ConfigError("DerivativeFit model", f"is a {type(model).__name__}; derivative targets "
+                              "correct a vector field", "use FlowMapFit for a HybridFlowMap.")
         return derivative_targets(ts, model.physics, self.scheme)
 
 
-class FlowMapRegression(_RegressionFit):
+class FlowMapFit(_RegressionFit):
     """Fit a memoryless closure to flow-map targets ``(x_{n+1} − Ψ0(x_n)) / Δt``.
 
     Args:
@@ -268,11 +268,11 @@ class FlowMapRegression(_RegressionFit):
         """Ψ0 over ``dt`` for ``model`` (its own for a HybridFlowMap)."""
         if isinstance(model, HybridFlowMap):
             if abs(model.dt - dt) > 1e-9 * max(1.0, dt):
-                raise ConfigError("FlowMapRegression model", f"steps Δt = {model.dt} but the data are sampled "
+                raise ConfigError("FlowMapFit model", f"steps Δt = {model.dt} but the data are sampled "
                                   f"every {dt}", "build the HybridFlowMap with the data's sampling interval.")
             return model.flow_map
         if not isinstance(model, HybridField):
-            raise ConfigError("FlowMapRegression model", f"is a {type(model).__name__}",
+            raise ConfigError("FlowMapFit model", f"is a {type(model).__name__}",
                               "give a HybridField or a HybridFlowMap.")
         if model.physics is None:
             return None
@@ -281,7 +281,7 @@ class FlowMapRegression(_RegressionFit):
 
     def targets(self, model, ts):
         if isinstance(model, HybridFlowMap) and ts.forcing is not None:
-            raise ConfigError("FlowMapRegression model", "a HybridFlowMap takes no forcing inputs",
+            raise ConfigError("FlowMapFit model", "a HybridFlowMap takes no forcing inputs",
                               "fit a HybridField (continuous targets) for forced systems.")
         flow_map = self.flow_map_for(model, ts.dt)
         continuous = self.target == "continuous" or (self.target == "auto" and isinstance(model, HybridField))

@@ -30,7 +30,7 @@ Before training, the closure's scaling is set from the data (inputs by the
 training mean/std; outputs by the mean/std of the finite-difference residual
 ``ẋ̂ − f0(x)``, so the readout starts at the missing term's mean), and a linear
 readout is optionally initialised by ridge regression
-(:class:`~mnemode.fitting.ReadoutRidge`), which backpropagation then fine-tunes.
+(:class:`~mnemode.fitting.ReadoutRidgeFit`), which backpropagation then fine-tunes.
 
 Budgets: ``steps`` optimiser updates (deterministic: a resumed fit ends with the
 same weights, bit for bit, as an uninterrupted one) and/or ``max_seconds`` of wall
@@ -63,7 +63,7 @@ from ..closures.base import LinearReadout, Memory
 from ..errors import CheckpointError, ConfigError, DataError, FitDiverged
 from ..hybrid import Forcing, HybridField, HybridFlowMap, simulate, warm_up
 from .checkpoint import has_checkpoint, load_checkpoint, load_state_checked, save_checkpoint
-from .readout import ReadoutRidge, residual_targets
+from .readout import ReadoutRidgeFit, residual_targets
 from .regression import set_scaling
 
 __all__ = ["TrajectoryFit"]
@@ -85,7 +85,7 @@ SETTINGS_VERSION = 2
 #: :data:`RESUME_OVERRIDABLE`, which change only how the rest of the fit proceeds
 SETTINGS_FIELDS = ("steps", "max_seconds", "batch_size", "lr", "lr_final", "weight_decay", "horizon",
                    "curriculum", "unit", "warm_up_grad", "reforce_every", "clip", "val_every", "val_windows",
-                   "val_horizon", "gamma", "patience", "checkpoint_every", "readout_init", "ridge_alpha", "scheme",
+                   "val_horizon", "gamma", "patience", "checkpoint_every", "readout_init", "ridge", "scheme",
                    "divergence_retries", "divergence_lr_factor")
 RESUME_OVERRIDABLE = ("lr", "lr_final", "divergence_retries", "divergence_lr_factor", "max_seconds")
 
@@ -187,7 +187,7 @@ class TrajectoryFit:
         readout_init: ``'ridge'`` (fit a linear readout by ridge first), ``'offset'``
             (only the data scalings, whose output offset is the mean residual) or
             ``'auto'`` (ridge when the closure's readout allows it).
-        ridge_alpha: penalty(ies) for the ridge initialisation (see ReadoutRidge). The
+        ridge: penalty(ies) for the ridge initialisation (see ReadoutRidgeFit). The
             default 1e-4 keeps the readout weights O(1): the smallest-error
             penalties give large cancelling weights, which amplify every change of
             the hidden field and make fine-tuning fragile.
@@ -224,7 +224,7 @@ class TrajectoryFit:
                  warm_up_grad: float | None = 2.0, reforce_every: int | None = None, clip: float = 1.0,
                  val_every: int = 100, val_windows: int = 64, val_horizon: float = 25.0, gamma: float = 0.5,
                  patience: int | None = None, checkpoint_every: int = 100, readout_init: str = "auto",
-                 ridge_alpha: float | Sequence[float] | None = 1e-4, scheme: str = "central4",
+                 ridge: float | Sequence[float] | None = 1e-4, scheme: str = "central4",
                  divergence_retries: int = 3, divergence_lr_factor: float = 0.3):
         if steps is None and max_seconds is None:
             raise ConfigError("fit.steps", "and fit.max_seconds are both null: the fit has no budget",
@@ -273,8 +273,8 @@ class TrajectoryFit:
         self.val_horizon, self.gamma = float(val_horizon), float(gamma)
         self.patience = None if patience is None else int(patience)
         self.checkpoint_every, self.readout_init = int(checkpoint_every), readout_init
-        self.ridge_alpha = ridge_alpha if ridge_alpha is None or isinstance(ridge_alpha, (int, float)) \
-            else [float(a) for a in ridge_alpha]
+        self.ridge = ridge if ridge is None or isinstance(ridge, (int, float)) \
+            else [float(a) for a in ridge]
         self.scheme = scheme
         self.divergence_retries, self.divergence_lr_factor = int(divergence_retries), float(divergence_lr_factor)
 
@@ -662,7 +662,7 @@ class TrajectoryFit:
     def _initialise(self, model, train, val, ctx):
         closure = model.closure
         if self._uses_ridge(closure):
-            ReadoutRidge(alpha=self.ridge_alpha, scheme=self.scheme).fit(model, train, val, ctx)
+            ReadoutRidgeFit(ridge=self.ridge, scheme=self.scheme).fit(model, train, val, ctx)
         else:
             _, inputs, rho = residual_targets(model, train, self.scheme)
             set_scaling(closure, inputs.reshape(-1, inputs.shape[-1]), rho.reshape(-1, rho.shape[-1]))
