@@ -43,6 +43,8 @@ class TargetComparison:
         learned: ``(N, D)`` learned correction.
         target: ``(N, D)`` regression targets.
         r2: per component R² of ``learned`` against ``target``.
+        rows: ``(N,)`` flat positions ``n·B + b`` of the samples on the ``(T, B)``
+            grid (for the continuous flow-map form, the interval's start).
     """
 
     kind: str
@@ -50,6 +52,7 @@ class TargetComparison:
     learned: np.ndarray
     target: np.ndarray
     r2: list[float]
+    rows: np.ndarray
 
     def to_dict(self, names) -> dict:
         return {"kind": self.kind, "n_samples": int(self.target.shape[0]),
@@ -63,11 +66,11 @@ def nominal_field(model):
     return model.physics
 
 
-def _comparison(kind, times, learned, target, keep) -> TargetComparison:
+def _comparison(kind, times, learned, target, keep, rows) -> TargetComparison:
     learned = learned[keep].detach().cpu().numpy().astype(np.float64)
     target = target[keep].detach().cpu().numpy().astype(np.float64)
     r2 = [r_squared(learned[:, i], target[:, i]) for i in range(target.shape[1])]
-    return TargetComparison(kind, times[keep], learned, target, r2)
+    return TargetComparison(kind, times[keep], learned, target, r2, rows[keep])
 
 
 def compare_with_targets(model, ts, trace: Trace, warm_up: float = 0.0,
@@ -94,14 +97,16 @@ def compare_with_targets(model, ts, trace: Trace, warm_up: float = 0.0,
     _, targets = derivative_targets(ts, nominal_field(model), scheme)
     learned = trace.m[index].reshape(-1, trace.m.shape[-1]).to(torch.float64)
     t_rows = np.repeat(times[index], B)
-    out.append(_comparison("derivative", t_rows, learned, targets, t_rows - times[0] >= skip))
+    rows = (index[:, None] * B + np.arange(B)[None, :]).reshape(-1)
+    out.append(_comparison("derivative", t_rows, learned, targets, t_rows - times[0] >= skip, rows))
 
     t_rows = np.repeat(times[:-1], B)
     keep = t_rows - times[0] >= skip
+    rows = np.arange((T - 1) * B)
     if isinstance(model, HybridFlowMap):
         _, targets = flow_map_targets(ts, model.flow_map, continuous=False)
         learned = trace.m[:-1].reshape(-1, trace.m.shape[-1]).to(torch.float64)
-        out.append(_comparison("flow map (discrete)", t_rows, learned, targets, keep))
+        out.append(_comparison("flow map (discrete)", t_rows, learned, targets, keep, rows))
     else:
         flow_map = FlowMapRegression().flow_map_for(model, ts.dt)
         inputs, targets = flow_map_targets(ts, flow_map, continuous=True)
@@ -112,5 +117,5 @@ def compare_with_targets(model, ts, trace: Trace, warm_up: float = 0.0,
         if memory:
             r_mid = (0.5 * (trace.r[:-1] + trace.r[1:])).reshape(-1, trace.r.shape[-1])
         learned = evaluate_correction(model.closure, x_mid, r_mid, u_mid).to(torch.float64)
-        out.append(_comparison("flow map (continuous)", t_rows + 0.5 * ts.dt, learned, targets, keep))
+        out.append(_comparison("flow map (continuous)", t_rows + 0.5 * ts.dt, learned, targets, keep, rows))
     return out

@@ -12,8 +12,11 @@ Share of the correction carried by each input's history. The hidden state is
 driven again with input ``j`` frozen at its training mean (its history erased;
 the readout still sees its present value), and the correction recomputed::
 
-    carried_j = 1 − R²(m_frozen_j, m)          (share of the correction's variance lost)
+    carried_j = 1 − R²(m_frozen_j, m)          (share of the correction's variance lost;
+                                                above 1 when the frozen run is worse than none)
     ΔR²_j     = R²(m, target) − R²(m_frozen_j, target)
+
+(R² against the target pooled over components, so the large ones weigh most).
 
 ``target`` being the model's own regression target (derivative targets for a
 continuous model, discrete flow-map targets for a flow-map model). A row with
@@ -98,6 +101,12 @@ def time_constants(closure, trace: Trace, dt: float, keep: np.ndarray | None = N
     return TimeConstants(ev[order], tau[order], period[order], bool(closure.discrete), _is_linear_field(closure))
 
 
+def _pooled_r2(predicted: np.ndarray, target: np.ndarray) -> float:
+    """``1 − ΣΣ(ŷ − y)² / ΣΣ(y − ȳ)²`` over all components (large components weigh most)."""
+    spread = float(np.sum((target - target.mean(0)) ** 2))
+    return 1.0 - float(np.sum((predicted - target) ** 2)) / spread if spread > 0 else math.nan
+
+
 @dataclass
 class HistoryShare:
     """How much of the correction each input's history carries (module docstring).
@@ -141,7 +150,7 @@ def history_share(model, trace: Trace, dt: float, input_means, input_names, targ
     T, B, D = trace.x.shape
     rows_ok = np.repeat(np.asarray(keep, dtype=bool), B)
     m_full = trace.m.reshape(-1, D).to(torch.float64).numpy()
-    r2_full = float(np.nanmean([r_squared(m_full[target_rows, i], target[:, i]) for i in range(D)]))
+    r2_full = _pooled_r2(m_full[target_rows], target)
     n_in = len(input_means)
     sets = [{j: float(input_means[j])} for j in range(n_in)] + [{j: float(input_means[j]) for j in range(n_in)}]
     names = list(input_names)[:n_in] + ["all inputs"]
@@ -154,5 +163,5 @@ def history_share(model, trace: Trace, dt: float, input_means, input_names, targ
         ok = np.isfinite(per)
         share = 1.0 - float(np.average(np.asarray(per)[ok], weights=weights[ok])) if ok.any() else math.nan
         carried.append(share)
-        r2_frozen.append(float(np.nanmean([r_squared(m[target_rows, i], target[:, i]) for i in range(D)])))
+        r2_frozen.append(_pooled_r2(m[target_rows], target))
     return HistoryShare(names, carried, r2_full, r2_frozen, target_kind)

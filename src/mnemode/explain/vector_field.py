@@ -88,7 +88,8 @@ class VectorFieldEquivalent:
     Attributes:
         fit: sparse surrogate ``m_c = Θ Ξ`` (its ``r2``: how well the flow of
             ``f0 + m_c`` reproduces the learned step, per component).
-        difference: per component, ``rms(m_d − m_c) / rms(m_c)`` at the test states.
+        difference: per component, ``rms(m_d,i − m_c,i) / rms‖m_c‖`` at the test states
+            (relative to the size of the whole vector-field term, so finite where ``m_c,i = 0``).
         overall_difference: the same over all components together.
         iterations: Gauss–Newton steps taken.
     """
@@ -176,8 +177,9 @@ def equivalent_vector_field(model, x: torch.Tensor, library: PolynomialLibrary, 
                     negligible)
     m_c = theta_x @ coef
     diff = md - m_c
-    rel = [float(_rms(diff[:, i]) / _rms(m_c[:, i])) if _rms(m_c[:, i]) > 0 else math.nan for i in range(D)]
-    total = float(np.sqrt(np.sum(diff ** 2) / np.sum(m_c ** 2))) if np.sum(m_c ** 2) > 0 else math.nan
+    size_c = float(np.sqrt(np.mean(np.sum(m_c ** 2, axis=1))))     # rms of the vector ‖m_c‖
+    rel = [float(_rms(diff[:, i]) / size_c) if size_c > 0 else math.nan for i in range(D)]
+    total = float(np.sqrt(np.sum(diff ** 2) / np.sum(m_c ** 2))) if size_c > 0 else math.nan
     return VectorFieldEquivalent(fit, rel, total, iterations)
 
 
