@@ -36,6 +36,13 @@ def rate_unit(unit: str, time_unit: str) -> str:
     return f"1/{per}" if unit in _DIMENSIONLESS else f"{unit}/{per}"
 
 
+def _margins(fig: Figure, rows: int, cols: int) -> None:
+    """Fixed margins (constrained layout costs seconds per figure on a busy CPU)."""
+    w, h = fig.get_size_inches()
+    fig.subplots_adjust(left=min(0.3, 0.85 / w), right=0.98, bottom=min(0.3, 0.55 / h), top=1 - min(0.3, 0.45 / h),
+                        wspace=0.45 if cols > 1 else 0.2, hspace=0.55 if rows > 1 else 0.2)
+
+
 def _r2(v) -> str:
     return "n/a" if v is None or not math.isfinite(v) else f"{v:.3f}"
 
@@ -43,7 +50,7 @@ def _r2(v) -> str:
 def along_targets_figure(reading, trace, max_components: int = 6) -> Figure:
     """Learned correction and derivative targets over the first test trajectory."""
     D = min(len(reading.state_names), max_components)
-    fig = Figure(figsize=(8.0, 2.0 * D + 0.6), layout="constrained")
+    fig = Figure(figsize=(8.0, 2.0 * D + 0.6))
     axes = fig.subplots(D, 1, sharex=True, squeeze=False)[:, 0]
     deriv = reading.comparisons[0]
     B = trace.x.shape[1]
@@ -57,6 +64,7 @@ def along_targets_figure(reading, trace, max_components: int = 6) -> Figure:
     axes[-1].set_xlabel(_label("time", "" if reading.time_unit in _DIMENSIONLESS else reading.time_unit))
     axes[0].legend(fontsize=8, loc="upper right")
     fig.suptitle(f"{reading.model_name}: learned correction along the first test trajectory")
+    _margins(fig, D, 1)
     return fig
 
 
@@ -64,7 +72,7 @@ def against_targets_figure(reading, max_components: int = 6, max_points: int = 3
     """Scatter of learned correction against each target kind, per component, with R²."""
     D = min(len(reading.state_names), max_components)
     K = len(reading.comparisons)
-    fig = Figure(figsize=(3.2 * K, 2.8 * D), layout="constrained")
+    fig = Figure(figsize=(3.2 * K, 2.8 * D))
     axes = fig.subplots(D, K, squeeze=False)
     rng = np.random.default_rng(0)
     for k, comp in enumerate(reading.comparisons):
@@ -81,6 +89,7 @@ def against_targets_figure(reading, max_components: int = 6, max_points: int = 3
             ax.set_ylabel(_label(f"learned m_{reading.state_names[i]}", unit), fontsize=8)
             ax.set_title(f"{reading.state_names[i]}: R² = {_r2(comp.r2[i])}", fontsize=9)
     fig.suptitle(f"{reading.model_name}: learned correction against regression targets")
+    _margins(fig, D, K)
     return fig
 
 
@@ -89,7 +98,7 @@ def partial_dependence_figure(reading, max_components: int = 6, max_inputs: int 
     pd = reading.partial
     D = min(len(reading.state_names), max_components)
     J = min(len(pd.input_names), max_inputs)
-    fig = Figure(figsize=(2.6 * J + 0.6, 2.2 * D + 0.6), layout="constrained")
+    fig = Figure(figsize=(2.6 * J + 0.6, 2.2 * D + 0.6))
     axes = fig.subplots(D, J, squeeze=False, sharey="row")
     in_units = list(reading.state_units) + [""] * (len(pd.input_names) - len(reading.state_units))
     for i in range(D):
@@ -102,13 +111,14 @@ def partial_dependence_figure(reading, max_components: int = 6, max_inputs: int 
                 ax.set_ylabel(_label(f"m_{reading.state_names[i]}",
                                      rate_unit(reading.state_units[i], reading.time_unit)), fontsize=8)
     fig.suptitle(f"{reading.model_name}: partial dependence over the training envelope")
+    _margins(fig, D, J)
     return fig
 
 
 def surrogate_figure(reading, values: np.ndarray, predicted: np.ndarray, max_components: int = 6) -> Figure:
     """Sparse surrogate against the learned correction at the surrogate's sample points."""
     D = min(len(reading.state_names), max_components)
-    fig = Figure(figsize=(3.2 * D, 3.0), layout="constrained")
+    fig = Figure(figsize=(3.2 * D, 3.0))
     axes = fig.subplots(1, D, squeeze=False)[0]
     for i, ax in enumerate(axes):
         ax.plot(values[:, i], predicted[:, i], ".", ms=2, alpha=0.5, color="C1")
@@ -119,12 +129,13 @@ def surrogate_figure(reading, values: np.ndarray, predicted: np.ndarray, max_com
         ax.set_ylabel(_label("sparse surrogate", unit), fontsize=8)
         ax.set_title(f"{reading.state_names[i]}: R² = {_r2(reading.surrogate.r2[i])}", fontsize=9)
     fig.suptitle(f"{reading.model_name}: sparse polynomial surrogate")
+    _margins(fig, 1, D)
     return fig
 
 
 def memory_figure(reading) -> Figure:
     """Time constants (log scale) and the share of the correction carried by each input's history."""
-    fig = Figure(figsize=(9.0, 3.2), layout="constrained")
+    fig = Figure(figsize=(9.0, 3.2))
     ax1, ax2 = fig.subplots(1, 2)
     tau = np.asarray(reading.time_constants.tau)
     finite = np.isfinite(tau) & (tau > 0)
@@ -139,6 +150,8 @@ def memory_figure(reading) -> Figure:
     ax2.set_ylabel("share of correction variance lost")
     ax2.set_title("history frozen at its training mean", fontsize=9)
     fig.suptitle(f"{reading.model_name}: memory")
+    _margins(fig, 1, 2)
+    fig.subplots_adjust(bottom=0.25)
     return fig
 
 
