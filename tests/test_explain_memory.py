@@ -124,3 +124,17 @@ def test_partial_dependence_matches_closed_form():
     np.testing.assert_allclose(pd.curves[1, :, 0], np.full(11, 0.7 * np.mean(x[:, 0] ** 2)), rtol=1e-12)
     np.testing.assert_allclose(pd.curves[1, :, 1], -1.3 * g1 + g1 * x[:, 0].mean(), atol=1e-12)
     assert pd.spread[1, 0] == pytest.approx(0.0, abs=1e-12)
+
+
+def test_bad_settings_and_short_data_are_clear_errors():
+    from mnemode.errors import ConfigError, DataError
+
+    ts = _waves(n_times=20)
+    closure = _float64(lambda: ReservoirClosure(2, hidden_size=2, time_constants=(0.1, 0.1)))
+    model = HybridField(None, closure, 2)
+    with pytest.raises(DataError, match="warm"):
+        read_correction(model, ts, ts, warm_up=5.0)
+    with pytest.raises(ConfigError, match="degree"):
+        read_correction(model, ts, ts, degree=-1)
+    with pytest.raises(ConfigError, match="no closure"):
+        read_correction(HybridField(closure=None, physics=torch.nn.Identity(), dim=2), ts, ts)

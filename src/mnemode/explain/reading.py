@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import torch
 
+from ..errors import ConfigError, DataError
 from ..hybrid import HybridFlowMap
 from .against_targets import TargetComparison, compare_with_targets, nominal_field
 from .memory import HistoryShare, TimeConstants, history_share, time_constants
@@ -137,11 +138,17 @@ def read_correction(model, test, train, *, model_name: str = "model", state_name
         seed: chooses sample subsets.
 
     Raises:
-        ValueError: a model without a closure.
+        ConfigError: a model without a closure, a negative degree or threshold.
+        DataError: test trajectories no longer than the warm-up (closures with memory).
     """
     closure = getattr(model, "closure", None)
     if closure is None:
-        raise ValueError("the model has no closure: there is no learned correction to read")
+        raise ConfigError("model", "has no closure, so there is no learned correction to read",
+                          "pass a hybrid model with a fitted closure.")
+    if int(degree) < 0 or not float(threshold) >= 0 or not float(noise_floor) >= 0:
+        raise ConfigError("surrogate settings", f"degree={degree}, threshold={threshold}, "
+                          f"noise_floor={noise_floor}; expected a degree ≥ 0 and fractions ≥ 0",
+                          "e.g. degree 2, threshold 0.01.")
     discrete = isinstance(model, HybridFlowMap)
     memory = bool(closure.hidden_size)
     dt = float(test.dt)
@@ -155,8 +162,9 @@ def read_correction(model, test, train, *, model_name: str = "model", state_name
     times = np.asarray(test.times, dtype=np.float64)
     keep_t = (times - times[0] >= warm_up) if memory else np.ones(times.size, dtype=bool)
     if not keep_t.any():
-        raise ValueError(f"the test trajectories ({times[-1] - times[0]} time units) are shorter than the "
-                         f"warm-up ({warm_up})")
+        raise DataError("test trajectories", f"last {times[-1] - times[0]} time units, no longer than the "
+                        f"warm-up ({warm_up}), so no sample has a driven hidden state",
+                        "use longer test trajectories or a shorter warm_up.")
     comparisons = compare_with_targets(model, test, trace, warm_up, scheme)
 
     envelope = train.envelope()

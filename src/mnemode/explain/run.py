@@ -61,10 +61,13 @@ def explain_run(run_path, model_name: str | None = None, *, overwrite: bool = Fa
         ``(reading, path of report.md)``.
 
     Raises:
-        ConfigError: an unknown model name or a model without closure.
+        ConfigError: an unknown model name, a model without closure, bad settings.
         CheckpointError: not a run directory, a missing fitted model, or an existing
             reading without ``overwrite``.
     """
+    if int(degree) < 0 or not float(threshold) >= 0:
+        raise ConfigError("--degree/--threshold", f"are {degree} and {threshold}; expected a degree ≥ 0 and a "
+                          "threshold ≥ 0", "e.g. --degree 2 --threshold 0.01.")
     name, system, data, model, solver, warm_up = _load(run_path, model_name)
     out = correction_dir(run_path, name)
     if out.exists() and any(out.iterdir()) and not overwrite:
