@@ -92,3 +92,15 @@ def test_r_squared_matches_its_definition():
     expected = 1 - np.sum((p - y) ** 2) / np.sum((y - y.mean()) ** 2)
     assert r_squared(p, y) == pytest.approx(expected, rel=1e-14)
     assert math.isnan(r_squared(p, np.ones(100)))
+
+
+def test_library_jacobian_matches_autograd():
+    import torch
+
+    lib = PolynomialLibrary(["x", "y", "z"], degree=3)
+    v = torch.as_tensor(_points(2), dtype=torch.float64)
+    jac = lib.jacobian(v)
+    # reference: torch.autograd.functional.jacobian of the library row by row
+    for n in range(v.shape[0]):
+        ref = torch.autograd.functional.jacobian(lambda w: lib(w), v[n])
+        torch.testing.assert_close(jac[n], ref, rtol=1e-12, atol=1e-12)

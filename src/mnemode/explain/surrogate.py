@@ -85,6 +85,17 @@ class PolynomialLibrary:
         return np.stack([np.prod(v ** e, axis=-1) for e in self.exponents], axis=-1)
 
 
+    def jacobian(self, v: torch.Tensor) -> torch.Tensor:
+        """``∂θ_k/∂v_j`` ``(..., n_terms, n_variables)`` in closed form (torch)."""
+        e = torch.as_tensor(self.exponents, dtype=v.dtype, device=v.device)     # (K, V)
+        cols = []
+        for j in range(e.shape[1]):
+            lowered = e.clone()
+            lowered[:, j] = torch.clamp(e[:, j] - 1, min=0)
+            cols.append(e[:, j] * torch.prod(v[..., None, :] ** lowered, dim=-1))
+        return torch.stack(cols, dim=-1)
+
+
 def stlsq(A: np.ndarray, b: np.ndarray, threshold: float, column_size: np.ndarray | None = None,
           scale: float = 1.0, max_iter: int = 20):
     """Sequentially thresholded least squares for ``A ξ ≈ b``.

@@ -68,17 +68,19 @@ class _Augmented(nn.Module):
     def forward(self, t, state):
         N, D, P = state.shape[0], self.dim, self.P
         z, S = state[:, :D], state[:, D:].reshape(N, D, P * D)
-        with torch.enable_grad():
+        with torch.enable_grad():  # Jacobian of the physics, row by row (the field acts on each state alone)
             zz = z.detach().requires_grad_(True)
-            F = self.field(zz)
-            J = torch.stack([torch.autograd.grad(F[:, i].sum(), zz, retain_graph=i + 1 < D)[0]
+            f0 = self.physics(0.0, zz)
+            J = torch.stack([torch.autograd.grad(f0[:, i].sum(), zz, retain_graph=i + 1 < D)[0]
                              for i in range(D)], dim=1)         # (N, D, D)
-            theta = self.library(zz).detach()                   # (N, P)
+        theta = self.library(z)                                 # (N, P)
+        # the polynomial part's Jacobian in closed form: Σ_p Ξ[p, i] ∂θ_p/∂z_j
+        J = J.detach() + torch.einsum("npj,pi->nij", self.library.jacobian(z), self.coef)
         E = torch.zeros(N, D, P, D, dtype=z.dtype)
         for i in range(D):
             E[:, i, :, i] = theta
-        dS = J.detach() @ S + E.reshape(N, D, P * D)
-        return torch.cat((F.detach(), dS.reshape(N, -1)), dim=-1)
+        dS = J @ S + E.reshape(N, D, P * D)
+        return torch.cat((f0.detach() + theta @ self.coef, dS.reshape(N, -1)), dim=-1)
 
 
 @dataclass
