@@ -1,7 +1,8 @@
 """Figures of a correction reading, built without pyplot (Agg when saved).
 
-* ``along_targets.png``: the learned correction and its regression targets along the
-  first test trajectory, one panel per component;
+* ``along_targets.png``: the learned correction and its own regression targets
+  (derivative, or discrete flow-map for a flow-map model) along the first test
+  trajectory, one panel per component;
 * ``against_targets.png``: learned correction against each kind of target, per
   component, with R² and the identity line;
 * ``partial_dependence.png``: one panel per (component, input);
@@ -39,7 +40,7 @@ def rate_unit(unit: str, time_unit: str) -> str:
 def _margins(fig: Figure, rows: int, cols: int) -> None:
     """Fixed margins (constrained layout costs seconds per figure on a busy CPU)."""
     w, h = fig.get_size_inches()
-    fig.subplots_adjust(left=min(0.3, 0.85 / w), right=0.98, bottom=min(0.3, 0.55 / h), top=1 - min(0.3, 0.45 / h),
+    fig.subplots_adjust(left=min(0.3, 0.85 / w), right=0.98, bottom=min(0.3, 0.55 / h), top=1 - min(0.3, 0.6 / h),
                         wspace=0.45 if cols > 1 else 0.2, hspace=0.55 if rows > 1 else 0.2)
 
 
@@ -48,16 +49,17 @@ def _r2(v) -> str:
 
 
 def along_targets_figure(reading, trace, max_components: int = 6) -> Figure:
-    """Learned correction and derivative targets over the first test trajectory."""
+    """Learned correction and the model's own regression targets over the first test trajectory."""
     D = min(len(reading.state_names), max_components)
     fig = Figure(figsize=(8.0, 2.0 * D + 0.6))
     axes = fig.subplots(D, 1, sharex=True, squeeze=False)[:, 0]
-    deriv = reading.comparisons[0]
+    # the model's own target: discrete flow-map targets for a flow-map model, derivative targets otherwise
+    own = reading.comparisons[1] if reading.form == "discrete" else reading.comparisons[0]
     B = trace.x.shape[1]
-    first = (deriv.rows % B) == 0
+    first = (own.rows % B) == 0
     t = trace.times
     for i, ax in enumerate(axes):
-        ax.plot(deriv.time[first], deriv.target[first, i], color="0.55", lw=0.9, label="derivative target")
+        ax.plot(own.time[first], own.target[first, i], color="0.7", lw=2.5, label=f"{own.kind} target")
         ax.plot(t, trace.m[:, 0, i].double().numpy(), color="C0", lw=1.0, label="learned correction")
         ax.set_ylabel(_label(f"m_{reading.state_names[i]}",
                              rate_unit(reading.state_units[i], reading.time_unit)))

@@ -70,7 +70,8 @@ def reading_markdown(reading, figures: dict[str, str] | None = None) -> str:
     if discrete:
         lines.append("The derivative row compares this flow-map correction with the vector-field targets it is "
                      "*not* an estimate of; the gap between the rows is one sign of the discrete-versus-vector-"
-                     "field difference (quantified below).")
+                     "field difference (quantified below). At coarse sampling the finite-difference targets are "
+                     "themselves inaccurate, so that row is only indicative.")
         lines.append("")
     for key, caption in (("along_targets", "correction along the first test trajectory"),
                          ("against_targets", "learned correction against targets")):
@@ -166,7 +167,9 @@ def reading_markdown(reading, figures: dict[str, str] | None = None) -> str:
                     rows.append(f"| d{n}/dt | {term} | {_f(c)} | {_f(d)} | {_f(d / c if c else math.nan, 3)} |")
             if rows:
                 lines += ["| equation | term | vector field | flow-map surrogate | ratio |", "|---|---|---|---|---|",
-                          *rows, ""]
+                          *rows, "",
+                          "A ratio alone can mislead: the flow-map correction also spreads over terms the "
+                          "vector-field term does not have (its surrogate above).", ""]
             if r.midpoint is not None:
                 lines += [
                     "For comparison, the continuous (midpoint) form of the flow-map targets of the learned step "
