@@ -138,3 +138,35 @@ def test_bad_settings_and_short_data_are_clear_errors():
         read_correction(model, ts, ts, degree=-1)
     with pytest.raises(ConfigError, match="no closure"):
         read_correction(HybridField(closure=None, physics=torch.nn.Identity(), dim=2), ts, ts)
+
+
+class _ForcedKnown(Closure):
+    """m = (0.8·q0·u, −0.5·u²): a memoryless correction of the state and one forcing input (test double)."""
+
+    forcing_dim = 1
+
+    def __init__(self):
+        super().__init__(2)
+        self.scaling = Scaling(3, 2)
+
+    def correction(self, x, r=None, u=None):
+        return torch.stack((0.8 * x[..., 0] * u[..., 0], -0.5 * u[..., 0] ** 2), dim=-1)
+
+
+def test_forcing_inputs_enter_the_surrogate_and_partial_dependence():
+    from dataclasses import replace
+
+    ts = _waves(batch=3)
+    u = np.cos(0.7 * ts.times)[:, None, None] * np.linspace(0.5, 1.5, 3)[None, :, None]
+    ts = replace(ts, forcing=u, forcing_names=("heat",))
+    reading = read_correction(HybridField(None, _float64(_ForcedKnown), 2), ts, ts)
+    s = reading.surrogate
+    assert reading.input_names == ["q0", "q1", "heat"]
+    # the polynomial surrogate finds the exact terms (exact data: STLSQ reduces to least squares on them)
+    assert s.coefficient("q0·heat", 0) == pytest.approx(0.8, abs=1e-10)
+    assert s.coefficient("heat^2", 1) == pytest.approx(-0.5, abs=1e-10)
+    assert [t for t, _, _ in s.terms(1)] == ["heat^2"]
+    # closed-form partial dependence over the forcing's training range: −0.5·v² for m_q1
+    pd = reading.partial
+    grid = np.linspace(u.min(), u.max(), pd.grid.shape[1])
+    np.testing.assert_allclose(pd.curves[2, :, 1], -0.5 * grid ** 2, rtol=1e-12)
