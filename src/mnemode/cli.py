@@ -80,8 +80,9 @@ def main(argv: list[str] | None = None) -> None:
         elif command == "correction":
             _correction(rest)
         else:
-            print(f"mnemode: error: unknown command {command!r}. Fix: use one of "
-                  f"{', '.join(HYDRA_COMMANDS + ('assess', 'export', 'resume', 'rollout', 'correction'))}.", file=sys.stderr)
+            known = HYDRA_COMMANDS + ("assess", "export", "resume", "rollout", "correction")
+            print(f"mnemode: error: unknown command {command!r}. Fix: use one of {', '.join(known)}.",
+                  file=sys.stderr)
             sys.exit(2)
     except MnemodeError as exc:
         _fail(exc)
