@@ -95,6 +95,9 @@ class CorrectionReading:
         }
 
 
+_SENSITIVITY_BUDGET = 25_000_000  # float64 numbers (200 MB) in the flow sensitivities of the equivalent fit
+
+
 def _rms(a, axis=0):
     return np.sqrt(np.mean(np.asarray(a, dtype=np.float64) ** 2, axis=axis))
 
@@ -221,8 +224,17 @@ def read_correction(model, test, train, *, model_name: str = "model", state_name
         else:
             lib_x = PolynomialLibrary(names, degree)
             x64 = x.to(torch.float64)
-            equivalent = equivalent_vector_field(model, x64, lib_x, threshold=threshold, floor=floor,
-                                                 component_names=names)
+            # the sensitivities hold N·D·(terms·D) numbers: keep them under _SENSITIVITY_BUDGET
+            per_point = D * len(lib_x) * D
+            n_fit = min(x64.shape[0], _SENSITIVITY_BUDGET // per_point)
+            if n_fit < 2 * len(lib_x):
+                notes.append(f"No vector-field equivalent: {len(lib_x)} candidate terms in each of {D} components "
+                             "need more flow sensitivities than this version integrates (a 200 MB budget); "
+                             "a lower --degree may fit.")
+            else:
+                stride = -(-x64.shape[0] // n_fit)
+                equivalent = equivalent_vector_field(model, x64[::stride], lib_x, threshold=threshold, floor=floor,
+                                                     component_names=names)
             midpoint = midpoint_surrogate(model, x64, lib_x, threshold=threshold, floor=floor,
                                           component_names=names)
     else:
