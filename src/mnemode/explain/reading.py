@@ -140,6 +140,9 @@ def read_correction(model, test, train, *, model_name: str = "model", state_name
         n_grid: grid values per partial-dependence curve.
         seed: chooses sample subsets.
 
+    Returns:
+        a :class:`CorrectionReading` (write it with :func:`mnemode.explain.write_reading`).
+
     Raises:
         ConfigError: a model without a closure, a negative degree or threshold.
         DataError: test trajectories no longer than the warm-up (closures with memory).
