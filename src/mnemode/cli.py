@@ -37,6 +37,7 @@ commands taking a path:
   assess RUN_DIR      re-assess a run's fitted models (never refits)
   export RUN_DIR      export a run's model as a frozen simulator
   resume RUN_DIR      continue an interrupted run (or every unfinished job of a sweep)
+  correction RUN_DIR  read what a fitted model learned: R² against targets, equations, memory
   rollout SIMULATOR   roll an exported simulator forward from a state or history
 
 examples:
@@ -76,9 +77,12 @@ def main(argv: list[str] | None = None) -> None:
             _resume(rest)
         elif command == "rollout":
             _rollout(rest)
+        elif command == "correction":
+            _correction(rest)
         else:
-            print(f"mnemode: error: unknown command {command!r}. Fix: use one of "
-                  f"{', '.join(HYDRA_COMMANDS + ('assess', 'export', 'resume', 'rollout'))}.", file=sys.stderr)
+            known = HYDRA_COMMANDS + ("assess", "export", "resume", "rollout", "correction")
+            print(f"mnemode: error: unknown command {command!r}. Fix: use one of {', '.join(known)}.",
+                  file=sys.stderr)
             sys.exit(2)
     except MnemodeError as exc:
         _fail(exc)
@@ -272,6 +276,27 @@ def _rollout(rest: list[str]) -> None:
         raise MnemodeError("rollout", "needs a starting point", "pass --x0 or --history.")
     out = rollout_to_file(sim, x0, args.steps, args.out, history=history, progress=True, overwrite=args.overwrite)
     print(f"wrote {args.steps + 1} states to {out}")
+
+
+def _correction(rest: list[str]) -> None:
+    from .explain import explain_run
+
+    parser = argparse.ArgumentParser(prog="mnemode correction",
+                                     description="Read a fitted model's learned correction: figures and a report.")
+    parser.add_argument("run_dir")
+    parser.add_argument("--model", default=None, help="which fitted model (default: the run's main model)")
+    parser.add_argument("--degree", type=int, default=2, help="highest degree of the polynomial surrogate")
+    parser.add_argument("--threshold", type=float, default=0.01,
+                        help="drop surrogate terms contributing less than this fraction of their component")
+    parser.add_argument("--overwrite", action="store_true", help="replace an earlier reading of this model")
+    args, run = _run_dir_arg(parser, rest)
+    reading, path = explain_run(run.path, args.model, overwrite=args.overwrite, degree=args.degree,
+                                threshold=args.threshold)
+    print("\n".join(reading.surrogate.equations()))
+    if reading.equivalent is not None:
+        print("equivalent vector-field term:")
+        print("\n".join(reading.equivalent.fit.equations()))
+    print(f"report: {path}")
 
 
 if __name__ == "__main__":  # pragma: no cover
