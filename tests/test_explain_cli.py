@@ -17,7 +17,7 @@ from mnemode.pipeline import compose_config, run_pipeline
 
 pytestmark = pytest.mark.slow
 
-SMALL = ["data.n_train=2", "data.n_val=1", "data.n_test=1", "data.spin_up=5", "progress=false", "baselines=none"]
+SMALL = ["data.n_train=2", "data.n_val=1", "data.n_test=1", "data.spin_up=5", "progress=false", "compare=none"]
 
 
 def _fit(tmp_path, name, overrides):
@@ -26,7 +26,7 @@ def _fit(tmp_path, name, overrides):
 
 
 def test_correction_command_writes_report_and_figures_and_never_overwrites(tmp_path, capsys):
-    run = _fit(tmp_path, "lorenz", ["experiment=lorenz63_perturbed", "baselines=none", "data.duration=10",
+    run = _fit(tmp_path, "lorenz", ["experiment=lorenz63_perturbed", "compare=none", "data.duration=10",
                                     "data.test_duration=10", "closure.n_features=100"])
     main(["correction", str(run)])
     out = run / "correction" / "memoryless"
@@ -57,7 +57,7 @@ def test_correction_command_writes_report_and_figures_and_never_overwrites(tmp_p
 
 
 def test_correction_of_a_memory_closure_reports_time_constants(tmp_path):
-    run = _fit(tmp_path, "memory", ["closure=filter_bank", "fit=readout_ridge", "warm_up=1.0",
+    run = _fit(tmp_path, "memory", ["closure=reservoir_filter_bank", "fit=readout_ridge", "warm_up=1.0",
                                     "data.duration=8", "data.test_duration=8"])
     main(["correction", str(run)])
     out = run / "correction" / "memory"

@@ -16,7 +16,7 @@ import torch
 from mnemode.closures import RandomFeatureClosure
 from mnemode.data import generate
 from mnemode.explain import read_correction, reading_markdown
-from mnemode.fitting import DerivativeRegression, FlowMapRegression
+from mnemode.fitting import DerivativeFit, FlowMapFit
 from mnemode.hybrid import HybridField, HybridFlowMap
 from mnemode.solvers import RK4, FlowMap
 from mnemode.systems import lorenz63
@@ -50,7 +50,7 @@ def test_fine_sampling_surrogate_recovers_the_missing_term():
     system = _system()
     train, test = _data(system, 0.01, 4, 20.0)
     model = HybridField(system.nominal, _closure(), 3)
-    DerivativeRegression().fit(model, train, None)
+    DerivativeFit().fit(model, train, None)
     reading = read_correction(model, test, train, state_units=system.state_units, time_unit=system.time_unit)
     s = reading.surrogate
     coef = s.coefficient("x", 1)
@@ -88,7 +88,7 @@ def test_coarse_sampling_states_the_difference_and_the_flow_map_fit_recovers_the
     system = _system()
     train, test = _data(system, dt, 4, 30.0)
     model = HybridFlowMap(FlowMap(system.nominal, dt, RK4(dt / 10)), _closure(), 3, dt)
-    FlowMapRegression(target="discrete").fit(model, train, None)
+    FlowMapFit(target="discrete").fit(model, train, None)
     reading = read_correction(model, test, train, state_units=system.state_units, time_unit=system.time_unit)
     eq = reading.equivalent
     assert eq is not None

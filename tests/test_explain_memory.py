@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 import torch
 
-from mnemode.closures import RecurrentClosure, ReservoirClosure
+from mnemode.closures import RecurrentClosure, ReservoirClosure, ReservoirFlowClosure
 from mnemode.closures.base import Closure, Scaling
 from mnemode.data import TrajectorySet
 from mnemode.explain import read_correction
@@ -35,17 +35,12 @@ def _waves(n_times=120, dt=0.05, batch=2, dim=2, seed=0) -> TrajectorySet:
 
 
 def _float64(make):
-    previous = torch.get_default_dtype()
-    torch.set_default_dtype(torch.float64)
-    try:
-        return make()
-    finally:
-        torch.set_default_dtype(previous)
+    return make(torch.float64)
 
 
 def test_filter_bank_time_constants_are_the_configured_ones():
     ts = _waves()
-    closure = _float64(lambda: ReservoirClosure(2, hidden_size=6, time_constants=(0.1, 10.0)))
+    closure = _float64(lambda dtype: ReservoirClosure(2, hidden_size=6, time_constants=(0.1, 10.0), dtype=dtype))
     trace = trace_correction(HybridField(None, closure, 2), ts, RK4(0.025))
     tc = time_constants(closure, trace, ts.dt)
     expected = np.repeat(np.logspace(-1, 1, 3), 2)  # numpy.logspace over (τ_min, τ_max), one per input
@@ -55,7 +50,7 @@ def test_filter_bank_time_constants_are_the_configured_ones():
 
 def test_discrete_filter_bank_time_constants_from_its_multipliers():
     ts = _waves(dt=0.2)
-    closure = _float64(lambda: ReservoirClosure(2, hidden_size=4, time_constants=(0.5, 5.0), interval=0.2))
+    closure = _float64(lambda dtype: ReservoirFlowClosure(2, hidden_size=4, time_constants=(0.5, 5.0), interval=0.2, dtype=dtype))
     trace = trace_correction(HybridFlowMap(None, closure, 2, 0.2), ts)
     tc = time_constants(closure, trace, 0.2)
     # one interval of dr/dt = (x − r)/τ with x held: r ← r·exp(−Δt/τ) + …, so μ = exp(−Δt/τ)
@@ -66,7 +61,7 @@ def test_discrete_filter_bank_time_constants_from_its_multipliers():
 
 def test_leaky_field_eigenvalues_give_time_constants_and_periods():
     ts = _waves()
-    closure = _float64(lambda: RecurrentClosure(2, hidden_size=3, form="leaky", time_constants=(0.5, 2.0)))
+    closure = _float64(lambda dtype: RecurrentClosure(2, hidden_size=3, form="leaky", time_constants=(0.5, 2.0), dtype=dtype))
     a_rel = np.array([[-1.0, 2.0, 0.0], [-2.0, -1.0, 0.0], [0.0, 0.3, -0.5]])
     with torch.no_grad():
         closure.A_rel.copy_(torch.as_tensor(a_rel))
@@ -82,7 +77,7 @@ def test_leaky_field_eigenvalues_give_time_constants_and_periods():
 def test_history_share_names_the_input_whose_past_the_correction_uses():
     ts = _waves(n_times=200, batch=3)
     train = _waves(n_times=200, batch=3, seed=5)
-    closure = _float64(lambda: ReservoirClosure(2, hidden_size=4, time_constants=(0.3, 1.0)))
+    closure = _float64(lambda dtype: ReservoirClosure(2, hidden_size=4, time_constants=(0.3, 1.0), dtype=dtype))
     # features [q̃0, q̃1, r(τ=0.3, q0), r(τ=0.3, q1), r(τ=1, q0), r(τ=1, q1), 1]: read only the past of q0
     w = torch.zeros(7, 2, dtype=torch.float64)
     w[2, 0], w[4, 1], w[1, 1] = 1.0, -2.0, 0.5
@@ -101,9 +96,9 @@ def test_history_share_names_the_input_whose_past_the_correction_uses():
 class _Known(Closure):
     """m = (a·x0², b·x1 + x0·x1) with no learned state (a test double)."""
 
-    def __init__(self, a=0.7, b=-1.3):
-        super().__init__(2)
-        self.scaling = Scaling(2, 2)
+    def __init__(self, dtype=None, a=0.7, b=-1.3):
+        super().__init__(2, dtype=dtype)
+        self.scaling = Scaling(2, 2, dtype)
         self.a, self.b = a, b
 
     def correction(self, x, r=None, u=None):
@@ -130,7 +125,7 @@ def test_bad_settings_and_short_data_are_clear_errors():
     from mnemode.errors import ConfigError, DataError
 
     ts = _waves(n_times=20)
-    closure = _float64(lambda: ReservoirClosure(2, hidden_size=2, time_constants=(0.1, 0.1)))
+    closure = _float64(lambda dtype: ReservoirClosure(2, hidden_size=2, time_constants=(0.1, 0.1), dtype=dtype))
     model = HybridField(None, closure, 2)
     with pytest.raises(DataError, match="warm"):
         read_correction(model, ts, ts, warm_up=5.0)
@@ -143,11 +138,9 @@ def test_bad_settings_and_short_data_are_clear_errors():
 class _ForcedKnown(Closure):
     """m = (0.8·q0·u, −0.5·u²): a memoryless correction of the state and one forcing input (test double)."""
 
-    forcing_dim = 1
-
-    def __init__(self):
-        super().__init__(2)
-        self.scaling = Scaling(3, 2)
+    def __init__(self, dtype=None):
+        super().__init__(2, forcing_dim=1, dtype=dtype)
+        self.scaling = Scaling(3, 2, dtype)
 
     def correction(self, x, r=None, u=None):
         return torch.stack((0.8 * x[..., 0] * u[..., 0], -0.5 * u[..., 0] ** 2), dim=-1)

@@ -11,6 +11,7 @@ Stages, lowest first (a module may import its own stage and those below it):
     assess      assess
     export      export, simulator
     job         pipeline, rundir, and the modules that orchestrate runs
+    reading     explain (reads a fitted run's correction)
     command     cli, __main__
 
 Every module of the package must be placed in this table, so a new module is placed on
@@ -28,7 +29,8 @@ import mnemode
 
 PACKAGE = Path(mnemode.__file__).resolve().parent
 
-STAGES = ["base", "physics", "closures", "hybrid", "shared", "fitting", "assess", "export", "job", "command"]
+STAGES = ["base", "physics", "closures", "hybrid", "shared", "fitting", "assess", "export", "job", "reading",
+          "command"]
 
 # first path component below mnemode/ (module or sub-package) -> stage
 PLACES = {
@@ -42,6 +44,7 @@ PLACES = {
     "assess": "assess",
     "export": "export", "simulator": "export",
     "pipeline": "job", "rundir": "job",
+    "explain": "reading",
     "cli": "command", "__main__": "command",
 }
 

@@ -24,7 +24,7 @@ import numpy as np
 import torch
 
 from ..data import finite_difference
-from ..fitting.regression import FlowMapRegression
+from ..fitting.regression import FlowMapFit
 from ..fitting.targets import derivative_targets, flow_map_targets
 from ..hybrid import HybridFlowMap
 from .surrogate import r_squared
@@ -108,7 +108,7 @@ def compare_with_targets(model, ts, trace: Trace, warm_up: float = 0.0,
         learned = trace.m[:-1].reshape(-1, trace.m.shape[-1]).to(torch.float64)
         out.append(_comparison("flow map (discrete)", t_rows, learned, targets, keep, rows))
     else:
-        flow_map = FlowMapRegression().flow_map_for(model, ts.dt)
+        flow_map = FlowMapFit().flow_map_for(model, ts.dt)
         inputs, targets = flow_map_targets(ts, flow_map, continuous=True)
         D = trace.x.shape[-1]
         x_mid = inputs[:, :D].to(trace.x.dtype)

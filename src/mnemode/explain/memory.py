@@ -31,6 +31,7 @@ from dataclasses import dataclass
 import numpy as np
 import torch
 
+from ..closures.base import DiscreteRecurrent
 from .surrogate import r_squared
 from .trace import Trace, drive_hidden, evaluate_correction
 
@@ -61,9 +62,11 @@ class TimeConstants:
 
 
 def _is_linear_field(closure) -> bool:
-    form = getattr(closure, "form", None)
-    kind = getattr(closure, "kind", None)
-    return form == "leaky" or kind == "filter_bank"
+    """Whether the hidden field is linear in ``r`` (its time constants are then exact)."""
+    from ..closures import RecurrentClosure, ReservoirClosure, ReservoirFlowClosure
+
+    return (isinstance(closure, RecurrentClosure) and closure.form == "leaky") or (
+        isinstance(closure, (ReservoirClosure, ReservoirFlowClosure)) and closure.kind == "filter_bank")
 
 
 def time_constants(closure, trace: Trace, dt: float, keep: np.ndarray | None = None,
@@ -80,12 +83,12 @@ def time_constants(closure, trace: Trace, dt: float, keep: np.ndarray | None = N
     H = r.shape[-1]
     with torch.enable_grad():
         z = r.clone().requires_grad_(True)
-        g = closure.hidden_field(x, z) if closure.discrete else closure.hidden_field(x, z, u)
+        g = closure.hidden_field(x, z) if isinstance(closure, DiscreteRecurrent) else closure.hidden_field(x, z, u)
         jac = torch.stack([torch.autograd.grad(g[:, i].sum(), z, retain_graph=i + 1 < H)[0]
                            for i in range(H)], dim=1)          # (N, H, H)
     J = jac.mean(0).detach().to(torch.float64).numpy()
     ev = np.linalg.eigvals(J)
-    if closure.discrete:
+    if isinstance(closure, DiscreteRecurrent):
         mod = np.abs(ev)
         with np.errstate(divide="ignore"):
             tau = np.where((mod < 1) & (mod > 0), -dt / np.log(np.where(mod > 0, mod, 1.0)),
@@ -98,7 +101,7 @@ def time_constants(closure, trace: Trace, dt: float, keep: np.ndarray | None = N
         im = np.abs(ev.imag)
         period = np.where(im > 1e-12, 2 * math.pi / np.where(im > 1e-12, im, 1.0), np.inf)
     order = np.argsort(tau)
-    return TimeConstants(ev[order], tau[order], period[order], bool(closure.discrete), _is_linear_field(closure))
+    return TimeConstants(ev[order], tau[order], period[order], isinstance(closure, DiscreteRecurrent), _is_linear_field(closure))
 
 
 def _pooled_r2(predicted: np.ndarray, target: np.ndarray) -> float:

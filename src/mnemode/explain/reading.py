@@ -147,7 +147,7 @@ def read_correction(model, test, train, *, model_name: str = "model", state_name
         ConfigError: a model without a closure, a negative degree or threshold.
         DataError: test trajectories no longer than the warm-up (closures with memory).
     """
-    closure = getattr(model, "closure", None)
+    closure = model.closure
     if closure is None:
         raise ConfigError("model", "has no closure, so there is no learned correction to read",
                           "pass a hybrid model with a fitted closure.")
@@ -160,7 +160,7 @@ def read_correction(model, test, train, *, model_name: str = "model", state_name
     dt = float(test.dt)
     names = list(state_names or test.names)
     units = list(state_units or test.units)
-    forcing_names = list(getattr(test, "forcing_names", ()) or ())
+    forcing_names = list(test.forcing_names or ())
     input_names = names + (forcing_names if closure.forcing_dim else [])
     notes: list[str] = []
 

@@ -31,7 +31,7 @@ def _load(run_path, model_name: str | None):
     run = RunDir(run_path)
     cfg = run.load_config()
     specs = pipeline.model_specs(cfg)
-    name = model_name or str(cfg.model.name)
+    name = model_name or pipeline.main_model_name(cfg)
     if name not in specs:
         raise ConfigError("--model", f"is {name!r}, which this run did not fit (models: {list(specs)})",
                           f"choose one of {list(specs)}.")

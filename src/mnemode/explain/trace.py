@@ -25,6 +25,7 @@ import numpy as np
 import torch
 from torch import nn
 
+from ..closures.base import DiscreteRecurrent
 from ..solvers import RK4, Solver
 
 __all__ = ["Trace", "model_dtype", "trace_correction", "drive_hidden", "evaluate_correction"]
@@ -110,7 +111,7 @@ def drive_hidden(model, x: torch.Tensor, u: torch.Tensor | None, dt: float, solv
     out = [r]
     with torch.no_grad():
         for n in range(x.shape[0] - 1):
-            if closure.discrete:
+            if isinstance(closure, DiscreteRecurrent):
                 r = closure.hidden_field(xd[n], r, None if ud is None else ud[n]) if closure.forcing_dim \
                     else closure.hidden_field(xd[n], r)
             else:
