@@ -53,6 +53,9 @@ def main(argv: list[str] | None = None) -> None:
         print(f"mnemode {__version__}")
         return
     command, rest = argv[0], argv[1:]
+    from .reproducible import pin_math_library
+
+    pin_math_library()  # before torch loads: runs with one seed repeat exactly
     handlers = _handlers()
     try:
         if command not in handlers:
@@ -138,6 +141,10 @@ def _memory_report(report: dict) -> str:
     return "\n".join(lines)
 
 
+def _fmt(v) -> str:
+    return f"{v:.4g}" if isinstance(v, (int, float)) else str(v)
+
+
 def _print_summary(run) -> None:
     metrics = run.metrics()
     assessment = metrics.get("assessment")
@@ -147,9 +154,14 @@ def _print_summary(run) -> None:
         print()
         print(metrics_table(assessment))
     else:
+        from .metric_labels import fit_error_label
+
+        timing = metrics.get("timing", {}).get("fit", {})
         for name, d in metrics.get("fit", {}).items():
-            print(f"{name}: train error {d.get('train_error')}, validation error {d.get('val_error')}, "
-                  f"{d.get('fit_seconds', 0):.1f} s")
+            secs = timing.get(name, {}).get("fit_seconds", d.get("fit_seconds", 0.0))
+            print(f"{name} ({d.get('closure')} by {d.get('fitter')}, {secs:.1f} s): "
+                  f"train error {_fmt(d.get('train_error'))}, validation error {_fmt(d.get('val_error'))}")
+            print(f"    train error: {fit_error_label(d.get('fitter'), 'train_error', d)}")
     print()
     print(f"run directory: {run.path}")
     for label, path in (("report", run.path / "report.md"), ("figures", run.path / "figures"),
