@@ -385,6 +385,7 @@ def assess_run(run: RunDir, cfg: DictConfig | None = None, system: System | None
     writer = _writer(run)
     try:
         result = assess_models(models, data.test, system, settings, out_dir=run.path, writer=writer)
+        _run_figures(run, result, models, data, settings, system, writer)
     finally:
         writer.flush()
         writer.close()
@@ -392,6 +393,19 @@ def assess_run(run: RunDir, cfg: DictConfig | None = None, system: System | None
     run.mark("assess")
     log.info("assessment done in %.1f s: report %s", time.perf_counter() - t0, run.path / "report.md")
     return result
+
+
+def _run_figures(run: RunDir, result: dict, models: dict, data: DataSplits, settings, system, writer) -> None:
+    """Training curves and hidden-state traces beside the assessment's figures; the report lists them all."""
+    from .assess.figures import CAPTIONS
+    from .assess.report import write_report
+    from .assess.run_figures import run_figures
+
+    writer.flush()  # the fit's curves are read back from the event files
+    made = run_figures(run.path, models, data.test, settings.warm_up, result["horizon"], system.time_unit,
+                       writer, fit=run.metrics().get("fit"), order=list(result.get("models", {})))
+    result["figures"] = {**(result.get("figures") or {}), **made}
+    write_report(result, run.path, {CAPTIONS.get(k, k): v for k, v in result["figures"].items()})
 
 
 def _flat_metrics(result: dict) -> dict:
