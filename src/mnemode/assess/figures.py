@@ -142,12 +142,13 @@ def forecast_traces_figure(t, truth, forecasts: dict, names, colours: dict, *, h
         pad = 0.35 * (hi - lo) + 1e-12
         ax.set_ylim(lo - pad, hi + pad)  # a model that runs away must not flatten the truth
         ax.set_ylabel(_with_unit(names[i], units[i]))
-        ax.axvline(0.0, color="0.3", lw=0.6)
+        ax.axvline(0.0, **palette.GUIDE.kw())
     axes[-1].set_xlabel(_time_label("time since forecast start", time_unit))
     # marker legend entries, once
-    axes[0].plot([], [], color="0.3", ls=":", lw=0.9, label="validity time (dotted)")
-    axes[0].plot([], [], color="0.3", marker=">", ls="none", label="valid at horizon (censored)")
-    axes[0].plot([], [], color="0.3", **_BLOWN, label="blew up (last finite state)")
+    grey = palette.THRESHOLD.color
+    axes[0].plot([], [], color=grey, ls=":", lw=0.9, label="validity time (dotted)")
+    axes[0].plot([], [], color=grey, marker=">", ls="none", label="valid at horizon (censored)")
+    axes[0].plot([], [], color=grey, **_BLOWN, label="blew up (last finite state)")
     fig.suptitle(title or "Forecasts from one test start: warm-up on observations, then free run", fontsize=10)
     _legend_outside(fig, axes)
     return fig
@@ -265,7 +266,7 @@ def acf_figure(lag_t, truth_acf, model_acfs: dict, colours: dict, labels, *, flo
         for name, a in model_acfs.items():
             if a is not None:
                 ax.plot(lag_t, a[:, i], label=name, **_style(name, colours).kw())
-        ax.axhline(0.0, color="0.8", lw=0.6)
+        ax.axhline(0.0, **palette.GUIDE.kw())
         ax.set_ylabel(f"ACF of {labels[i]} (dimensionless)")
     axes[-1].set_xlabel(_time_label("lag", time_unit))
     title = "Autocorrelation of long free runs"
@@ -356,7 +357,7 @@ def hidden_state_figure(t, hidden: dict, colours: dict, time_unit: str = "", max
         for j, k in enumerate(sorted(keep)):
             ax.plot(t, h[:, k], color=st.color, lw=1.0, ls=palette.MODEL_DASHES[j % len(palette.MODEL_DASHES)],
                     label=f"{name}: r{k + 1}")
-        ax.axvline(0.0, color="0.3", lw=0.6)
+        ax.axvline(0.0, **palette.GUIDE.kw())
         ax.set_ylabel(f"{name}: hidden state r\n(model's internal units)", fontsize=8)
     if not names:
         axes[0].text(0.5, 0.5, "no model with memory in this run", transform=axes[0].transAxes, ha="center")

@@ -15,7 +15,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-__all__ = ["LineStyle", "TRUTH", "HISTORY", "PHYSICS_ONLY", "ORACLE", "FLOOR", "THRESHOLD", "MODEL_COLOURS",
+__all__ = ["LineStyle", "TRUTH", "HISTORY", "PHYSICS_ONLY", "ORACLE", "FLOOR", "THRESHOLD", "GUIDE", "MODEL_COLOURS",
            "MODEL_DASHES", "SCHEME_COLOURS", "role_of", "line_styles"]
 
 # Okabe & Ito (2008) colour-universal-design hues
@@ -43,12 +43,13 @@ PHYSICS_ONLY = LineStyle(_ORANGE, (0, (6, 2, 1.5, 2)), 1.4, "physics")
 ORACLE = LineStyle(_PURPLE, (0, (1, 1.2)), 1.6, "reference")
 FLOOR = LineStyle("#999999", (0, (4, 2)), 1.3, "reference")   # the independent truth run
 THRESHOLD = LineStyle("#4D4D4D", (0, (3, 3)), 1.0, "threshold")
+GUIDE = LineStyle("#BFBFBF", "-", 0.6, "guide")                # zero lines, the forecast start
 
 MODEL_COLOURS = (_BLUE, _VERMILLION, _GREEN, _SKY, _YELLOW)
 MODEL_DASHES = ("-", (0, (5, 1.8)), (0, (1.2, 1.2)), (0, (7, 2, 1.5, 2, 1.5, 2)), (0, (3, 1.5)))
 
 SCHEME_COLOURS = frozenset({TRUTH.color, HISTORY.color, PHYSICS_ONLY.color, ORACLE.color, FLOOR.color,
-                            THRESHOLD.color, *MODEL_COLOURS})
+                            THRESHOLD.color, GUIDE.color, *MODEL_COLOURS})
 
 _REFERENCES = {"oracle": ORACLE, "floor": FLOOR}
 

@@ -17,7 +17,7 @@ import torch
 from ..hybrid import HybridFlowMap, simulate, warm_up
 from . import figures as figs
 
-__all__ = ["hidden_traces", "run_figures"]
+__all__ = ["hidden_traces", "build_run_figures", "run_figures"]
 
 
 def hidden_traces(model, solver, states: np.ndarray, start: int, n_warm: int, n_h: int, dt: float) -> np.ndarray:
@@ -42,13 +42,12 @@ def hidden_traces(model, solver, states: np.ndarray, start: int, n_warm: int, n_
     return torch.cat([warm, free]).double().numpy()
 
 
-def run_figures(run_path: str | Path, models: dict, test, warm_up_time: float, horizon: float,
-                time_unit: str = "", writer=None, fit: dict | None = None,
-                order: list[str] | None = None) -> dict[str, str]:
-    """Draw, save and log the training-curve and hidden-state figures of a run.
+def build_run_figures(run_path: str | Path, models: dict, test, warm_up_time: float, horizon: float,
+                      time_unit: str = "", fit: dict | None = None, order: list[str] | None = None):
+    """The training-curve and hidden-state figures of a run, and their numbers.
 
     Args:
-        run_path: the run directory (reads ``tb/``, writes ``figures/``).
+        run_path: the run directory (its ``tb/`` holds the fit's curves).
         models: name → object with ``.model`` and ``.solver`` (a ``ModelEntry``).
         test: the test :class:`~mnemode.data.TrajectorySet`.
         warm_up_time, horizon: in time units, as in the assessment.
@@ -56,34 +55,39 @@ def run_figures(run_path: str | Path, models: dict, test, warm_up_time: float, h
         order: all model names in the assessment's order, so colours match its figures.
 
     Returns:
-        figure key → path relative to ``run_path``.
+        (figure key → Figure, figure key → {scalar tag: value}).
     """
     run_path = Path(run_path)
     dt = test.dt
     styles = figs.model_colours(order or ["physics_only", *models])
     curves = figs.read_training_curves(run_path / "tb") if (run_path / "tb").is_dir() else {}
     closed = {n: (float(d["train_error"]), d.get("fitter")) for n, d in (fit or {}).items()
-              if n not in curves or "train/loss" not in curves.get(n, {})
-              if isinstance(d.get("train_error"), (int, float))}
+              if "train/loss" not in curves.get(n, {}) and isinstance(d.get("train_error"), (int, float))}
     built = {"training_curves": figs.training_curves_figure(curves, styles, time_unit, fit_errors=closed)}
     numbers = {"training_curves": {f"final_train_loss/{n}": float(c["train/loss"][1][-1])
                                    for n, c in curves.items() if "train/loss" in c}}
-
     memory = {n: e for n, e in models.items() if e.model.hidden_size > 0}
     if memory:
-        n_warm = int(round(warm_up_time / dt))
         n_h = int(round(horizon / dt))
-        n_warm = min(n_warm, test.n_times - 1 - n_h) if test.n_times - 1 - n_h > 0 else 0
-        start = n_warm
-        hidden = {n: hidden_traces(e.model, e.solver, test.states[:, 0], start, n_warm, n_h, dt)
+        n_warm = max(0, min(int(round(warm_up_time / dt)), test.n_times - 1 - n_h))
+        hidden = {n: hidden_traces(e.model, e.solver, test.states[:, 0], n_warm, n_warm, n_h, dt)
                   for n, e in memory.items()}
         t = (np.arange(n_warm + n_h + 1) - n_warm) * dt
         built["hidden_states"] = figs.hidden_state_figure(t, hidden, styles, time_unit)
-        numbers["hidden_states"] = {f"final_hidden_norm/{n}": float(np.linalg.norm(h[n_warm]))
+        numbers["hidden_states"] = {f"hidden_norm_at_start/{n}": float(np.linalg.norm(h[n_warm]))
                                     for n, h in hidden.items()}
+    return built, numbers
+
+
+def run_figures(run_path: str | Path, models: dict, test, warm_up_time: float, horizon: float,
+                time_unit: str = "", writer=None, fit: dict | None = None,
+                order: list[str] | None = None) -> dict[str, str]:
+    """Draw, save under ``RUN_DIR/figures/`` and log to ``writer`` the run's figures
+    (:func:`build_run_figures`); returns figure key → path relative to ``run_path``."""
+    built, numbers = build_run_figures(run_path, models, test, warm_up_time, horizon, time_unit, fit, order)
     made = {}
     for key, fig in built.items():
-        figs.save_figure(fig, run_path / "figures" / f"{key}.png")
+        figs.save_figure(fig, Path(run_path) / "figures" / f"{key}.png")
         made[key] = f"figures/{key}.png"
     if writer is not None:
         figs.log_figures(writer, built, numbers)
