@@ -67,7 +67,7 @@ def build_run_figures(run_path: str | Path, models: dict, test, warm_up_time: fl
     numbers = {"training_curves": {f"final_train_loss/{n}": float(c["train/loss"][1][-1])
                                    for n, c in curves.items() if "train/loss" in c}}
     memory = {n: e for n, e in models.items() if e.model.hidden_size > 0}
-    if memory:
+    if memory and test.forcing is None:  # forced models would need u(t) along the trace too
         n_h = int(round(horizon / dt))
         n_warm = max(0, min(int(round(warm_up_time / dt)), test.n_times - 1 - n_h))
         hidden = {n: hidden_traces(e.model, e.solver, test.states[:, 0], n_warm, n_warm, n_h, dt)
