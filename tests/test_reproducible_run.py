@@ -18,7 +18,7 @@ from mnemode.reproducible import PINNED_ENVIRONMENT, pin_math_library
 pytestmark = pytest.mark.slow
 
 SMALL = [
-    "experiment=tiny", "progress=false", "export.enabled=false", "warm_up=1.0",
+    "experiment=tiny", "baselines=none", "progress=false", "export.enabled=false", "warm_up=1.0",
     "data.n_train=2", "data.n_val=1", "data.spin_up=5.0", "data.n_test=1", "data.duration=10", "data.test_duration=10",
     "fit.steps=2", "fit.val_every=2", "fit.checkpoint_every=2", "fit.val_windows=4", "fit.val_horizon=1.0",
     "assess.n_starts=3", "assess.horizon=2.0", "assess.free_run_length=6.0", "assess.acf_max_lag=0.5",
@@ -33,7 +33,7 @@ def test_two_identical_runs_write_identical_metrics(tmp_path):
         m = json.loads(run.metrics_path.read_text())
         assert m["timing"]["fit"]["memory"]["fit_seconds"] > 0     # wall times are kept, apart
         metrics.append({key: v for key, v in m.items() if key != "timing"})
-    assert metrics[0]["fit"]["memoryless"]["train_error"] is not None
+    assert metrics[0]["fit"]["memory"]["train_error"] is not None
     assert metrics[0]["models"]["memory"]["kl_invariant"] is not None
     assert metrics[0] == metrics[1]
 
