@@ -10,7 +10,8 @@ states its own label in its diagnostics as ``train_error_label`` /
 
 from __future__ import annotations
 
-__all__ = ["MetricLabel", "ASSESSMENT_METRICS", "FIT_ERRORS", "fit_error_label", "metric_label", "versions"]
+__all__ = ["MetricLabel", "ASSESSMENT_METRICS", "FIT_ERRORS", "fit_error_label", "metric_label", "metrics_labels",
+           "versions"]
 
 
 class MetricLabel(tuple):
@@ -92,6 +93,22 @@ def fit_error_label(fitter: str | None, key: str = "train_error", diagnostics: d
 def metric_label(key: str) -> MetricLabel:
     """The label of an assessment metric (``validity_time_median``, ``kl_invariant``, ...)."""
     return ASSESSMENT_METRICS.get(key, MetricLabel(key.replace("_", " ")))
+
+
+def metrics_labels(fit: dict | None = None) -> dict:
+    """The ``labels`` section of metrics.json: what each number measures and its unit.
+
+    ``{"assessment": {key: {"measures", "unit"}}, "fit": {model: {"train_error": {...},
+    "val_error": {...}}}}``, the fit part from each model's recorded fitter.
+    """
+    def plain(label: MetricLabel) -> dict:
+        return {"measures": label.what, "unit": label.unit}
+
+    return {
+        "assessment": {k: plain(v) for k, v in ASSESSMENT_METRICS.items()},
+        "fit": {name: {key: plain(fit_error_label(d.get("fitter"), key, d)) for key in ("train_error", "val_error")}
+                for name, d in (fit or {}).items()},
+    }
 
 
 def versions() -> dict[str, str]:

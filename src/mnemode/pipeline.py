@@ -24,7 +24,7 @@ from .errors import CheckpointError, ConfigError, MnemodeError
 from .fitting.checkpoint import checkpoint_step
 from .fitting.context import FitContext
 from .hybrid import HybridField, HybridFlowMap
-from .metric_labels import versions
+from .metric_labels import metrics_labels, versions
 from .rundir import RunDir
 from .solvers import RK4, FlowMap, Solver
 from .systems.base import System
@@ -348,7 +348,7 @@ def fit_models(cfg: DictConfig, run: RunDir, system: System, data: DataSplits, *
         fit_section, timing = run.metrics().get("fit", {}), run.metrics().get("timing", {})
         fit_section[name] = {k: v for k, v in diagnostics.items() if not k.endswith("_seconds")}
         timing.setdefault("fit", {})[name] = {k: v for k, v in diagnostics.items() if k.endswith("_seconds")}
-        run.update_metrics(fit=fit_section, timing=timing)
+        run.update_metrics(fit=fit_section, timing=timing, labels=metrics_labels(fit_section))
         run.mark(stage)
         results[name] = diagnostics
         log.info("%s fitted in %.1f s: train error %s, validation error %s", name, diagnostics["fit_seconds"],
@@ -389,7 +389,7 @@ def assess_run(run: RunDir, cfg: DictConfig | None = None, system: System | None
     finally:
         writer.flush()
         writer.close()
-    run.update_metrics(assessment=result, **_flat_metrics(result))
+    run.update_metrics(assessment=result, labels=metrics_labels(run.metrics().get("fit")), **_flat_metrics(result))
     run.mark("assess")
     log.info("assessment done in %.1f s: report %s", time.perf_counter() - t0, run.path / "report.md")
     return result
