@@ -50,7 +50,12 @@ def _style(name: str, styles: dict) -> palette.LineStyle:
     return palette.line_styles([name])[name]
 
 
+_NO_DIMENSION = ("1", "-", "dimensionless")
+
+
 def _with_unit(label: str, unit: str | None) -> str:
+    if unit in _NO_DIMENSION:
+        return f"{label} (dimensionless)"
     return f"{label} ({unit})" if unit else f"{label} (no unit given)"
 
 
@@ -245,7 +250,8 @@ def density_figure(edges_list, truth_counts, model_counts: dict, colours: dict, 
             if counts is not None:
                 ax.stairs(density(counts[i]), edges, label=name, **_style(name, colours).kw())
         ax.set_xlabel(_with_unit(labels[i], units[i]))
-        ax.set_ylabel(f"density (1/{units[i]})" if units[i] else "density (per unit of x)")
+        dimensional = units[i] and units[i] not in _NO_DIMENSION
+        ax.set_ylabel(f"density (1/{units[i]})" if dimensional else "density (per unit of x)")
     title = "Invariant measure: 1-D marginal densities of long free runs"
     if blew_up:
         title += f"\n(no free run: {', '.join(blew_up)} blew up)"
