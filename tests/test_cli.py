@@ -26,7 +26,7 @@ def mnemode(*args, cwd: Path, env_extra: dict | None = None, timeout=300):
 
 def test_usage_and_unknown_command(tmp_path):
     r = mnemode(cwd=tmp_path)
-    assert r.returncode == 0 and "commands taking Hydra overrides" in r.stdout
+    assert r.returncode == 0 and "commands taking config overrides" in r.stdout
     r = mnemode("frobnicate", cwd=tmp_path)
     assert r.returncode == 2
     assert "unknown command 'frobnicate'" in r.stderr and "Fix:" in r.stderr

@@ -2,7 +2,8 @@
 
 Stages, lowest first (a module may import its own stage and those below it):
 
-    base        errors, fileio, version, linalg, configs_path
+    base        errors, fileio, version, linalg, configs_path, config_docs, metric_labels,
+                reproducible
     physics     systems, solvers, data, lyapunov
     closures    closures
     hybrid      hybrid
@@ -10,9 +11,9 @@ Stages, lowest first (a module may import its own stage and those below it):
     fitting     fitting
     assess      assess
     export      export, simulator
-    job         pipeline, rundir, and the modules that orchestrate runs
+    job         pipeline, rundir, run_index: the modules that orchestrate and list runs
     reading     explain (reads a fitted run's correction)
-    command     cli, __main__
+    command     cli, __main__, command_help
 
 Every module of the package must be placed in this table, so a new module is placed on
 purpose. The walk reads each file with :mod:`ast` (nothing is imported), including imports
@@ -36,6 +37,7 @@ STAGES = ["base", "physics", "closures", "hybrid", "shared", "fitting", "assess"
 PLACES = {
     "__init__": "command",  # the public API re-exports from every stage
     "errors": "base", "fileio": "base", "version": "base", "linalg": "base", "configs_path": "base",
+    "config_docs": "base", "metric_labels": "base", "reproducible": "base",
     "systems": "physics", "solvers": "physics", "data": "physics", "lyapunov": "physics",
     "closures": "closures",
     "hybrid": "hybrid",
@@ -43,9 +45,9 @@ PLACES = {
     "fitting": "fitting",
     "assess": "assess",
     "export": "export", "simulator": "export",
-    "pipeline": "job", "rundir": "job",
+    "pipeline": "job", "rundir": "job", "run_index": "job",
     "explain": "reading",
-    "cli": "command", "__main__": "command",
+    "cli": "command", "__main__": "command", "command_help": "command",
 }
 
 

@@ -11,6 +11,7 @@ fix, and exits non-zero.
 from __future__ import annotations
 
 import argparse
+import functools
 import logging
 import sys
 from pathlib import Path
@@ -21,31 +22,8 @@ __all__ = ["main"]
 
 log = logging.getLogger("mnemode")
 
-USAGE = """\
-usage: mnemode <command> [arguments]
-
-Learn what a physics model is missing; assess it; export a frozen simulator.
-
-commands taking Hydra overrides (add -m for a sweep, --help for the config groups):
-  run        the main job: data, fit the model and baselines, assess, export
-  fit        data and fitting only; leaves a run directory with the fitted models
-  generate   generate (and cache) the configured data set; prints where it went
-  diagnose   does the missing term need memory? fits a memoryless correction and
-             measures how much of what is left the recent history of x predicts
-
-commands taking a path:
-  assess RUN_DIR      re-assess a run's fitted models (never refits)
-  export RUN_DIR      export a run's model as a frozen simulator
-  resume RUN_DIR      continue an interrupted run (or every unfinished job of a sweep)
-  correction RUN_DIR  read what a fitted model learned: R² against targets, equations, memory
-  rollout SIMULATOR   roll an exported simulator forward from a state or history
-
-examples:
-  mnemode run
-  mnemode run experiment=memoryless_regime
-  mnemode run -m system.wall_response_time=0.1,1.0 name=tau_sweep
-  mnemode assess mnemode-runs/demo/2026-12-02_10-00-00
-"""
+# Imports stay inside the handlers: `mnemode --help`, `--version` and every
+# `<command> --help` answer without loading torch or Hydra.
 
 HYDRA_COMMANDS = ("run", "fit", "generate", "diagnose")
 
@@ -55,35 +33,36 @@ def _fail(exc: MnemodeError) -> None:
     sys.exit(exc.exit_code)
 
 
+def _handlers() -> dict:
+    """Command name -> handler taking the rest of the command line (add a command here)."""
+    table = {name: functools.partial(_hydra, name) for name in HYDRA_COMMANDS}
+    table.update(assess=_assess, export=_export, resume=_resume, rollout=_rollout, runs=_runs, correction=_correction)
+    return table
+
+
 def main(argv: list[str] | None = None) -> None:
     argv = list(sys.argv[1:] if argv is None else argv)
+    from .version import __version__
+
     if not argv or argv[0] in ("-h", "--help", "help"):
-        print(USAGE)
+        from .command_help import overview
+
+        print(overview(__version__), end="")
         return
     if argv[0] in ("--version", "version"):
-        from .version import __version__
-
         print(f"mnemode {__version__}")
         return
     command, rest = argv[0], argv[1:]
+    from .reproducible import pin_math_library
+
+    pin_math_library()  # before torch loads: runs with one seed repeat exactly
+    handlers = _handlers()
     try:
-        if command in HYDRA_COMMANDS:
-            _hydra(command, rest)
-        elif command == "assess":
-            _assess(rest)
-        elif command == "export":
-            _export(rest)
-        elif command == "resume":
-            _resume(rest)
-        elif command == "rollout":
-            _rollout(rest)
-        elif command == "correction":
-            _correction(rest)
-        else:
-            known = HYDRA_COMMANDS + ("assess", "export", "resume", "rollout", "correction")
-            print(f"mnemode: error: unknown command {command!r}. Fix: use one of {', '.join(known)}.",
-                  file=sys.stderr)
+        if command not in handlers:
+            print(f"mnemode: error: unknown command {command!r}. Fix: use one of "
+                  f"{', '.join(handlers)} (mnemode --help lists them).", file=sys.stderr)
             sys.exit(2)
+        handlers[command](rest)
     except MnemodeError as exc:
         _fail(exc)
     except KeyboardInterrupt:
@@ -94,6 +73,11 @@ def main(argv: list[str] | None = None) -> None:
 # -- Hydra-driven commands ---------------------------------------------------------
 
 def _hydra(command: str, rest: list[str]) -> None:
+    from .command_help import config_command_help, is_help_request
+
+    if is_help_request(rest):
+        print(config_command_help(command, rest), end="")
+        return
     import hydra
 
     from .configs_path import config_dir
@@ -157,6 +141,10 @@ def _memory_report(report: dict) -> str:
     return "\n".join(lines)
 
 
+def _fmt(v) -> str:
+    return f"{v:.4g}" if isinstance(v, (int, float)) else str(v)
+
+
 def _print_summary(run) -> None:
     metrics = run.metrics()
     assessment = metrics.get("assessment")
@@ -166,9 +154,14 @@ def _print_summary(run) -> None:
         print()
         print(metrics_table(assessment))
     else:
+        from .metric_labels import fit_error_label
+
+        timing = metrics.get("timing", {}).get("fit", {})
         for name, d in metrics.get("fit", {}).items():
-            print(f"{name}: train error {d.get('train_error')}, validation error {d.get('val_error')}, "
-                  f"{d.get('fit_seconds', 0):.1f} s")
+            secs = timing.get(name, {}).get("fit_seconds", d.get("fit_seconds", 0.0))
+            print(f"{name} ({d.get('closure')} by {d.get('fitter')}, {secs:.1f} s): "
+                  f"train error {_fmt(d.get('train_error'))}, validation error {_fmt(d.get('val_error'))}")
+            print(f"    train error: {fit_error_label(d.get('fitter'), 'train_error', d)}")
     print()
     print(f"run directory: {run.path}")
     for label, path in (("report", run.path / "report.md"), ("figures", run.path / "figures"),
@@ -181,6 +174,29 @@ def _print_summary(run) -> None:
 
 # -- path commands -------------------------------------------------------------
 
+_LISTS_MODELS = ("assess", "export", "resume", "correction")
+
+
+def _parser(command: str, rest: list[str]) -> argparse.ArgumentParser:
+    """The command's parser: its description and example from :mod:`mnemode.command_help`.
+
+    For commands taking a run directory, ``--help`` after a run directory also lists
+    that run's models.
+    """
+    from .command_help import COMMAND_DOCS, is_help_request
+
+    doc = COMMAND_DOCS[command]
+    epilog = f"example:\n  {doc.example}\n"
+    if command in _LISTS_MODELS and is_help_request(rest):
+        from .run_index import model_listing
+
+        given = next((a for a in rest if not a.startswith("-") and Path(a).is_dir()), None)
+        epilog += "\n" + (model_listing(given) if given else
+                          f"models: `mnemode {command} RUN_DIR --help` lists a run's models; "
+                          "`mnemode runs` lists the runs.\n")
+    return argparse.ArgumentParser(prog=f"mnemode {command}", description=doc.description, epilog=epilog,
+                                   formatter_class=argparse.RawDescriptionHelpFormatter)
+
 def _run_dir_arg(parser: argparse.ArgumentParser, rest: list[str]):
     args = parser.parse_args(rest)
     from .rundir import RunDir
@@ -192,24 +208,24 @@ def _run_dir_arg(parser: argparse.ArgumentParser, rest: list[str]):
 
 
 def _assess(rest: list[str]) -> None:
+    parser = _parser("assess", rest)
+    parser.add_argument("run_dir", help="a run directory printed by `mnemode run` or `mnemode fit`")
+    args, run = _run_dir_arg(parser, rest)
     from . import pipeline
 
-    parser = argparse.ArgumentParser(prog="mnemode assess", description="Re-assess a run's fitted models.")
-    parser.add_argument("run_dir")
-    args, run = _run_dir_arg(parser, rest)
     pipeline.assess_run(run)
     _print_summary(run)
 
 
 def _export(rest: list[str]) -> None:
-    from . import pipeline
-
-    parser = argparse.ArgumentParser(prog="mnemode export", description="Export a run's model as a frozen simulator.")
-    parser.add_argument("run_dir")
+    parser = _parser("export", rest)
+    parser.add_argument("run_dir", help="a run directory printed by `mnemode run` or `mnemode fit`")
     parser.add_argument("--model", default=None, help="which fitted model (default: the run's main model)")
     parser.add_argument("--onnx", action="store_true", default=None, help="also write simulator.onnx")
     parser.add_argument("--overwrite", action="store_true", help="replace an existing export of this run")
     args, run = _run_dir_arg(parser, rest)
+    from . import pipeline
+
     manifest = pipeline.export_run(run, model_name=args.model, onnx=args.onnx, overwrite=args.overwrite)
     print(f"exported {manifest.get('model_name', '')} to {run.export_dir}")
     parity = manifest.get("parity", {})
@@ -220,13 +236,12 @@ def _export(rest: list[str]) -> None:
 
 
 def _resume(rest: list[str]) -> None:
+    parser = _parser("resume", rest)
+    parser.add_argument("run_dir", help="a run directory, or a sweep directory (its unfinished jobs)")
+    args = parser.parse_args(rest)
     from . import pipeline
     from .rundir import RunDir
 
-    parser = argparse.ArgumentParser(prog="mnemode resume",
-                                     description="Continue an interrupted run, or the unfinished jobs of a sweep.")
-    parser.add_argument("run_dir")
-    args = parser.parse_args(rest)
     path = Path(args.run_dir)
     runs = [RunDir(path)] if (path / "config.yaml").exists() else sorted(
         (RunDir(p.parent) for p in path.glob("*/config.yaml")), key=lambda r: str(r.path))
@@ -245,10 +260,7 @@ def _resume(rest: list[str]) -> None:
 
 
 def _rollout(rest: list[str]) -> None:
-    from .simulator import load_simulator, rollout_to_file
-
-    parser = argparse.ArgumentParser(prog="mnemode rollout",
-                                     description="Roll an exported simulator forward and write the trajectory.")
+    parser = _parser("rollout", rest)
     parser.add_argument("simulator", help="export directory or its simulator.pt2 / simulator.json")
     parser.add_argument("--x0", default=None, help="initial observed state, comma-separated (e.g. 1.0,2.0,45)")
     parser.add_argument("--history", default=None,
@@ -259,6 +271,8 @@ def _rollout(rest: list[str]) -> None:
     parser.add_argument("--on-envelope", choices=("warn", "error", "ignore"), default="warn",
                         help="what to do when the state leaves the training envelope")
     args = parser.parse_args(rest)
+    from .simulator import load_simulator, rollout_to_file
+
     sim = load_simulator(args.simulator, on_envelope=args.on_envelope)
     x0 = None
     if args.x0 is not None:
@@ -279,17 +293,16 @@ def _rollout(rest: list[str]) -> None:
 
 
 def _correction(rest: list[str]) -> None:
-    from .explain import explain_run
-
-    parser = argparse.ArgumentParser(prog="mnemode correction",
-                                     description="Read a fitted model's learned correction: figures and a report.")
-    parser.add_argument("run_dir")
+    parser = _parser("correction", rest)
+    parser.add_argument("run_dir", help="a run directory printed by `mnemode run` or `mnemode fit`")
     parser.add_argument("--model", default=None, help="which fitted model (default: the run's main model)")
     parser.add_argument("--degree", type=int, default=2, help="highest degree of the polynomial surrogate")
     parser.add_argument("--threshold", type=float, default=0.01,
                         help="drop surrogate terms contributing less than this fraction of their component")
     parser.add_argument("--overwrite", action="store_true", help="replace an earlier reading of this model")
     args, run = _run_dir_arg(parser, rest)
+    from .explain import explain_run
+
     reading, path = explain_run(run.path, args.model, overwrite=args.overwrite, degree=args.degree,
                                 threshold=args.threshold)
     print("\n".join(reading.surrogate.equations()))
@@ -297,6 +310,21 @@ def _correction(rest: list[str]) -> None:
         print("equivalent vector-field term:")
         print("\n".join(reading.equivalent.fit.equations()))
     print(f"report: {path}")
+
+def _runs(rest: list[str]) -> None:
+    parser = _parser("runs", rest)
+    parser.add_argument("root", nargs="?", default=None,
+                        help="a folder of runs, a sweep or one run (default: $MNEMODE_RUNS or ./mnemode-runs)")
+    parser.add_argument("--json", action="store_true", help="print the summaries as JSON")
+    args = parser.parse_args(rest)
+    from .run_index import default_runs_root, find_runs, runs_json, runs_table, summarise_run
+
+    root = Path(args.root) if args.root else default_runs_root()
+    if not root.is_dir():
+        raise MnemodeError(str(root), "is not a directory", "pass the folder your runs went to "
+                           "(runs_root, $MNEMODE_RUNS, or ./mnemode-runs by default).")
+    summaries = [summarise_run(p) for p in find_runs(root)]
+    print(runs_json(summaries) if args.json else runs_table(summaries, root), end="")
 
 
 if __name__ == "__main__":  # pragma: no cover

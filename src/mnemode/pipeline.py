@@ -24,6 +24,7 @@ from .errors import CheckpointError, ConfigError, MnemodeError
 from .fitting.checkpoint import checkpoint_step
 from .fitting.context import FitContext
 from .hybrid import HybridField, HybridFlowMap
+from .metric_labels import metrics_labels, versions
 from .rundir import RunDir
 from .solvers import RK4, FlowMap, Solver
 from .systems.base import System
@@ -112,8 +113,6 @@ def prepare_data(cfg: DictConfig, system: System, *, progress: bool = False) -> 
         fit_path, test_path = cache / "train_val.npz", cache / "test.npz"
         if fit_path.exists() and test_path.exists():
             log.info("using cached data %s", cache)
-            fit_set = load_trajectories(fit_path, expected_dim=system.dim)
-            test = load_trajectories(test_path, expected_dim=system.dim)
         else:
             log.info("generating %s data into %s", system.name, cache)
             solver = RK4(float(d.solver_step))
@@ -125,6 +124,10 @@ def prepare_data(cfg: DictConfig, system: System, *, progress: bool = False) -> 
                             spin_up=d.spin_up, progress=progress)
             fit_set.save(fit_path)
             test.save(test_path)
+        # The first run works on the arrays as read back from the cache, like every later run: the same
+        # memory layout gives the same rounding, so runs with one seed repeat exactly.
+        fit_set = load_trajectories(fit_path, expected_dim=system.dim)
+        test = load_trajectories(test_path, expected_dim=system.dim)
         train, val = fit_set.split_by_trajectory([int(d.n_train), int(d.n_val)])
         return DataSplits(train, val, test, str(cache))
     if d.source == "file":
@@ -339,10 +342,13 @@ def fit_models(cfg: DictConfig, run: RunDir, system: System, data: DataSplits, *
         diagnostics["closure"] = type(model.closure).__name__
         diagnostics["fitter"] = type(fitter).__name__
         diagnostics["hidden_size"] = int(model.hidden_size)
+        diagnostics["versions"] = versions()
         save_model(run.model_path(name), model, name, diagnostics)
-        fit_section = run.metrics().get("fit", {})
-        fit_section[name] = diagnostics
-        run.update_metrics(fit=fit_section)
+        # wall times go to their own section, so the rest of metrics.json repeats exactly for a fixed seed
+        fit_section, timing = run.metrics().get("fit", {}), run.metrics().get("timing", {})
+        fit_section[name] = {k: v for k, v in diagnostics.items() if not k.endswith("_seconds")}
+        timing.setdefault("fit", {})[name] = {k: v for k, v in diagnostics.items() if k.endswith("_seconds")}
+        run.update_metrics(fit=fit_section, timing=timing, labels=metrics_labels(fit_section))
         run.mark(stage)
         results[name] = diagnostics
         log.info("%s fitted in %.1f s: train error %s, validation error %s", name, diagnostics["fit_seconds"],
@@ -379,13 +385,27 @@ def assess_run(run: RunDir, cfg: DictConfig | None = None, system: System | None
     writer = _writer(run)
     try:
         result = assess_models(models, data.test, system, settings, out_dir=run.path, writer=writer)
+        _run_figures(run, result, models, data, settings, system, writer)
     finally:
         writer.flush()
         writer.close()
-    run.update_metrics(assessment=result, **_flat_metrics(result))
+    run.update_metrics(assessment=result, labels=metrics_labels(run.metrics().get("fit")), **_flat_metrics(result))
     run.mark("assess")
     log.info("assessment done in %.1f s: report %s", time.perf_counter() - t0, run.path / "report.md")
     return result
+
+
+def _run_figures(run: RunDir, result: dict, models: dict, data: DataSplits, settings, system, writer) -> None:
+    """Training curves and hidden-state traces beside the assessment's figures; the report lists them all."""
+    from .assess.figures import CAPTIONS
+    from .assess.report import write_report
+    from .assess.run_figures import run_figures
+
+    writer.flush()  # the fit's curves are read back from the event files
+    made = run_figures(run.path, models, data.test, settings.warm_up, result["horizon"], system.time_unit,
+                       writer, fit=run.metrics().get("fit"), order=list(result.get("models", {})))
+    result["figures"] = {**(result.get("figures") or {}), **made}
+    write_report(result, run.path, {CAPTIONS.get(k, k): v for k, v in result["figures"].items()})
 
 
 def _flat_metrics(result: dict) -> dict:

@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 from ..fileio import write_text
+from ..metric_labels import fit_error_label, metric_label
 
-__all__ = ["metrics_table", "render_report", "write_report"]
+__all__ = ["metrics_table", "models_table", "render_report", "write_report"]
 
 CAUTIONS = (
     "A learned correction is valid only inside its training envelope: the range of states, "
@@ -40,7 +42,8 @@ def metrics_table(result: dict) -> str:
     """
     unit = "time units"
     head = (f"| model | validity median [q25, q75] ({unit}) | in Lyapunov times | censored at horizon "
-            "| KL invariant (truth ‖ model) | ACF error |")
+            f"| KL invariant (truth ‖ model) ({metric_label('kl_invariant').unit}) "
+            "| ACF error (RMS over lags) |")
     lines = [head, "|---|---|---|---|---|---|"]
     for name, m in result.get("models", {}).items():
         label = name + (" (blew up)" if m.get("blew_up") else "")
@@ -60,8 +63,64 @@ def metrics_table(result: dict) -> str:
     return "\n".join(lines) + "\n"
 
 
-def render_report(result: dict, figures: dict[str, str] | None = None) -> str:
-    """The whole report as Markdown; ``figures`` maps a caption to a path relative to the report."""
+def _seconds(v) -> str:
+    if v is None:
+        return "–"
+    v = float(v)
+    return f"{v:.1f} s" if v < 120 else f"{v / 60:.1f} min"
+
+
+def models_table(fit: dict, timing: dict | None = None, warm_up=None) -> str:
+    """How each fitted model was made: closure, fitter, hidden size, fit time, warm-up, errors, versions.
+
+    ``fit`` is the run's ``metrics.json["fit"]`` (model → diagnostics); ``timing``
+    its ``metrics.json["timing"]["fit"]`` where fit times are kept apart. Below the
+    table, what ``train_error`` and ``val_error`` mean for each fitter used.
+    """
+    timing = timing or {}
+    lines = ["| model | closure | fitter | hidden size | fit time | warm-up (time units) | train error | "
+             "validation error | versions |", "|---|---|---|---|---|---|---|---|---|"]
+    fitters = {}
+    for name, d in fit.items():
+        secs = (timing.get(name) or {}).get("fit_seconds", d.get("fit_seconds"))
+        w = d.get("warm_up", warm_up) if d.get("hidden_size") else None
+        ver = d.get("versions") or {}
+        ver_cell = ", ".join(f"{k} {v}" for k, v in ver.items()) if ver else "–"
+        fitter = d.get("fitter")
+        fitters.setdefault(fitter, d)
+        lines.append(f"| {name} | {d.get('closure', '–')} | {fitter or '–'} | {d.get('hidden_size', '–')} "
+                     f"| {_seconds(secs)} | {_num(w) if w is not None else 'none (no memory)'} | {_num(d.get('train_error'))} "
+                     f"| {_num(d.get('val_error'))} | {ver_cell} |")
+    lines.append("")
+    for fitter, d in fitters.items():
+        lines.append(f"- *{fitter}*: train error = {fit_error_label(fitter, 'train_error', d)}; "
+                     f"validation error = {fit_error_label(fitter, 'val_error', d)}.")
+    return "\n".join(lines) + "\n"
+
+
+def _run_records(out_dir: Path | None) -> tuple[dict, dict]:
+    """The fit records (``fit``) and fit times (``timing.fit``) of the run in ``out_dir``, if any."""
+    if out_dir is None:
+        return {}, {}
+    try:
+        m = json.loads((Path(out_dir) / "metrics.json").read_text())
+    except (OSError, ValueError):
+        return {}, {}
+    return m.get("fit") or {}, (m.get("timing") or {}).get("fit") or {}
+
+
+def render_report(result: dict, figures: dict[str, str] | None = None, fit: dict | None = None,
+                  timing: dict | None = None, versions: dict | None = None) -> str:
+    """The whole report as Markdown.
+
+    Args:
+        result: what :func:`mnemode.assess.assess_models` returned.
+        figures: caption → path relative to the report.
+        fit: model → fit diagnostics (closure, fitter, hidden size, errors,
+            versions); adds the "How each model was made" section.
+        timing: model → fit times, where they are kept apart from ``fit``.
+        versions: versions of the assessing process (mnemode, torch, python).
+    """
     s = result.get("settings", {})
     unit = "time units"
     lam, lt = result.get("lyapunov_exponent"), result.get("lyapunov_time")
@@ -84,6 +143,10 @@ def render_report(result: dict, figures: dict[str, str] | None = None) -> str:
     if result.get("time_unit"):
         out += ["", f"One time unit is: {result['time_unit']}."]
     out += ["", "## Results", "", metrics_table(result)]
+    out.append("Validity times are in time units (and in Lyapunov times where λ is known); KL in nats "
+               "(0: the model's long-run distribution matches the truth's); ACF error is the RMS "
+               "difference of autocorrelations (dimensionless, 0 to 2).")
+    out.append("")
     if lam is not None:
         src = {"system": "stated by the system", "estimated": "estimated on the truth equations"}.get(
             result.get("lyapunov_source"), result.get("lyapunov_source") or "")
@@ -119,6 +182,10 @@ def render_report(result: dict, figures: dict[str, str] | None = None) -> str:
         "A run that leaves the finite numbers is marked *blew up* and gets no statistics.",
         "",
     ]
+    if fit:
+        out += ["## How each model was made", "", models_table(fit, timing, result.get("warm_up"))]
+    if versions:
+        out += ["Assessed with " + ", ".join(f"{k} {v}" for k, v in versions.items()) + ".", ""]
     if figures:
         out += ["## Figures", ""]
         for caption, path in figures.items():
@@ -130,8 +197,18 @@ def render_report(result: dict, figures: dict[str, str] | None = None) -> str:
     return "\n".join(out)
 
 
-def write_report(result: dict, out_dir: str | Path, figures: dict[str, str] | None = None) -> Path:
-    """Write ``out_dir/report.md`` atomically and return its path."""
+def write_report(result: dict, out_dir: str | Path, figures: dict[str, str] | None = None,
+                 fit: dict | None = None, timing: dict | None = None) -> Path:
+    """Write ``out_dir/report.md`` atomically and return its path.
+
+    When ``fit`` is not given and ``out_dir`` is a run directory, the fit records
+    and fit times are read from its ``metrics.json``.
+    """
+    from ..metric_labels import versions
+
+    if fit is None:
+        fit, found_timing = _run_records(Path(out_dir))
+        timing = timing if timing is not None else found_timing
     path = Path(out_dir) / "report.md"
-    write_text(path, render_report(result, figures))
+    write_text(path, render_report(result, figures, fit=fit, timing=timing, versions=versions()))
     return path
