@@ -13,21 +13,15 @@ import re
 import pytest
 
 from mnemode.cli import main
-from mnemode.pipeline import compose_config, run_pipeline
 
 pytestmark = pytest.mark.slow
 
-SMALL = ["data.n_train=2", "data.n_val=1", "data.n_test=1", "data.spin_up=5", "progress=false", "compare=none"]
+SMALL = ["data.n_train=2", "data.n_val=1", "data.n_test=1", "data.spin_up=5", "compare=none"]
 
 
-def _fit(tmp_path, name, overrides):
-    cfg = compose_config([*SMALL, f"data.cache_dir={tmp_path / 'cache'}", *overrides])
-    return run_pipeline(cfg, tmp_path / name, stages=("fit",)).path
-
-
-def test_correction_command_writes_report_and_figures_and_never_overwrites(tmp_path, capsys):
-    run = _fit(tmp_path, "lorenz", ["experiment=lorenz63_perturbed", "compare=none", "data.duration=10",
-                                    "data.test_duration=10", "closure.n_features=100"])
+def test_correction_command_writes_report_and_figures_and_never_overwrites(small_run, capsys):
+    run = small_run(name="lorenz", overrides=[*SMALL, "experiment=lorenz63_perturbed", "data.duration=10",
+                                              "data.test_duration=10", "closure.n_features=100"])
     main(["correction", str(run)])
     out = run / "correction" / "memoryless"
     report = (out / "report.md").read_text()
@@ -56,9 +50,9 @@ def test_correction_command_writes_report_and_figures_and_never_overwrites(tmp_p
     assert exc.value.code == 2 and "nonesuch" in capsys.readouterr().err
 
 
-def test_correction_of_a_memory_closure_reports_time_constants(tmp_path):
-    run = _fit(tmp_path, "memory", ["closure=reservoir_filter_bank", "fit=readout_ridge", "warm_up=1.0",
-                                    "data.duration=8", "data.test_duration=8"])
+def test_correction_of_a_memory_closure_reports_time_constants(small_run):
+    run = small_run(name="memory", overrides=[*SMALL, "closure=reservoir_filter_bank", "fit=readout_ridge",
+                                              "warm_up=1.0", "data.duration=8", "data.test_duration=8"])
     main(["correction", str(run)])
     out = run / "correction" / "memory"
     report = (out / "report.md").read_text()

@@ -17,7 +17,7 @@ from mnemode.metric_labels import FIT_ERRORS, fit_error_label, metrics_labels
 
 def test_every_shipped_fitter_has_labelled_errors():
     fitters = [name for name, obj in vars(fitting).items()
-               if inspect.isclass(obj) and callable(getattr(obj, "fit", None)) and name != "FitContext"]
+               if inspect.isclass(obj) and issubclass(obj, fitting.Fitter) and not inspect.isabstract(obj)]
     assert set(fitters) == set(FIT_ERRORS)
     for name in fitters:
         train, val = fit_error_label(name, "train_error"), fit_error_label(name, "val_error")
@@ -34,7 +34,7 @@ def test_relative_rms_error_reads_as_the_label_says():
     assert abs(relative_error(torch.as_tensor(pred), torch.as_tensor(y)) - expected) < 1e-12
     mean_pred = np.broadcast_to(y.mean(0), y.shape).copy()
     assert abs(relative_error(torch.as_tensor(mean_pred), torch.as_tensor(y)) - 1.0) < 1e-12
-    assert "0: perfect; 1: no better than their mean" in fit_error_label("DerivativeRegression").what
+    assert "0: perfect; 1: no better than their mean" in fit_error_label("DerivativeFit").what
 
 
 def test_a_fitters_own_label_wins_and_unknown_fitters_say_so():
@@ -42,6 +42,6 @@ def test_a_fitters_own_label_wins_and_unknown_fitters_say_so():
     label = fit_error_label("TrajectoryFit", "train_error", own)
     assert (label.what, label.unit) == ("negative log likelihood per point", "nats")
     assert "as defined by MyFit" in fit_error_label("MyFit").what
-    section = metrics_labels({"m": {"fitter": "ReadoutRidge"}})
+    section = metrics_labels({"m": {"fitter": "ReadoutRidgeFit"}})
     assert section["fit"]["m"]["train_error"]["unit"] == "ratio"
     assert section["assessment"]["kl_invariant"]["unit"] == "nats"

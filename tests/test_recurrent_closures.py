@@ -19,7 +19,6 @@ from scipy.linalg import expm
 from scipy.signal import lsim
 
 from mnemode.closures import GRUFlowClosure, RecurrentClosure, ReservoirClosure
-from mnemode.data import generate
 from mnemode.errors import ConfigError
 from mnemode.hybrid import HybridField, HybridFlowMap, simulate, warm_up
 from mnemode.solvers import RK4, Adaptive, Euler
@@ -259,10 +258,9 @@ def _true_wall_closure(dtype=torch.float64) -> RecurrentClosure:
 
 
 @pytest.fixture(scope="module")
-def wall_data():
-    system = thermosyphon(wall_response_time=TAU, conductance_ratio=BETA)
-    return system, generate(system, n_trajectories=2, duration=12.0, dt=0.02, solver=RK4(0.005),
-                            seed=3, spin_up=20.0)
+def wall_data(trajectories):
+    return trajectories("thermosyphon", {"wall_response_time": TAU, "conductance_ratio": BETA}, n_trajectories=2,
+                        duration=12.0, dt=0.02, solver_step=0.005, seed=3, spin_up=20.0)
 
 
 def test_true_wall_law_reproduces_truth_trajectories(wall_data):

@@ -17,14 +17,12 @@ import torch
 from sklearn.linear_model import Ridge
 
 from mnemode.closures import GRUFlowClosure, MLPClosure, RecurrentClosure, ReservoirClosure
-from mnemode.data import generate
 from mnemode.errors import ConfigError, DataError, FitDiverged
 from mnemode.fitting import FitContext, ReadoutRidgeFit, TrajectoryFit
 from mnemode.fitting.readout import drive_hidden, residual_targets
 from mnemode.fitting import trajectory as trajectory_module
 from mnemode.hybrid import HybridField, HybridFlowMap, simulate, warm_up
 from mnemode.solvers import RK4, Adaptive, FlowMap
-from mnemode.systems import thermosyphon
 
 torch.set_num_threads(1)
 DT = 0.02
@@ -45,9 +43,9 @@ class Recorder:
 
 
 @pytest.fixture(scope="module")
-def demo():
-    system = thermosyphon(wall_response_time=1.0)
-    data = generate(system, n_trajectories=4, duration=30.0, dt=DT, solver=RK4(0.01), seed=11, spin_up=20.0)
+def demo(trajectories):
+    system, data = trajectories("thermosyphon", {"wall_response_time": 1.0}, n_trajectories=4, duration=30.0,
+                                dt=DT, solver_step=0.01, seed=11, spin_up=20.0)
     train, val = data.split_by_trajectory([3, 1])
     return system, train, val
 

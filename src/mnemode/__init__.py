@@ -12,21 +12,40 @@ import importlib
 
 from .version import __version__
 
-__all__ = [
-    "TrajectorySet", "generate", "load_trajectories", "finite_difference", "Normalisation",
-    "Euler", "RK4", "Adaptive", "FlowMap",
-    "HybridField", "HybridFlowMap", "simulate", "warm_up",
-    "MnemodeError", "__version__",
-]
-
-# public name -> submodule that defines it (loaded on first access)
+# public name -> submodule that defines it (loaded on first access); grouped by stage
 _LAZY = {
+    # data
     "TrajectorySet": "data", "generate": "data", "load_trajectories": "data",
     "finite_difference": "data", "Normalisation": "data",
+    # systems
+    "System": "systems", "custom_system": "systems", "lorenz63": "systems", "lorenz96": "systems",
+    "lorenz96_two_scale": "systems", "thermosyphon": "systems",
+    # solvers
     "Euler": "solvers", "RK4": "solvers", "Adaptive": "solvers", "FlowMap": "solvers",
-    "HybridField": "hybrid", "HybridFlowMap": "hybrid", "simulate": "hybrid", "warm_up": "hybrid",
-    "MnemodeError": "errors",
+    # closures and their declared capabilities
+    "Closure": "closures", "RegressionFittable": "closures", "LinearReadout": "closures", "Memory": "closures",
+    "Recurrent": "closures", "DiscreteRecurrent": "closures",
+    "RandomFeatureClosure": "closures", "MLPClosure": "closures", "GaussianProcessClosure": "closures",
+    "RingLocalClosure": "closures", "RecurrentClosure": "closures", "ReservoirClosure": "closures",
+    "ReservoirFlowClosure": "closures", "GRUFlowClosure": "closures",
+    # hybrid models
+    "HybridField": "hybrid", "HybridFlowMap": "hybrid", "Forcing": "hybrid", "simulate": "hybrid",
+    "warm_up": "hybrid",
+    # fitters
+    "FitContext": "fitting", "Fitter": "fitting", "DerivativeFit": "fitting", "FlowMapFit": "fitting",
+    "ReadoutRidgeFit": "fitting", "TrajectoryFit": "fitting",
+    # assessment, export, the exported simulator
+    "AssessSettings": "assess", "assess_models": "assess",
+    "export_simulator": "export", "load_simulator": "simulator",
+    # the whole job
+    "compose_config": "pipeline", "run_pipeline": "pipeline", "load_run_model": "pipeline",
+    "RunDir": "rundir",
+    # errors
+    "MnemodeError": "errors", "ConfigError": "errors", "DataError": "errors", "CheckpointError": "errors",
+    "FitDiverged": "errors",
 }
+
+__all__ = [*_LAZY, "__version__"]
 
 
 def __getattr__(name: str):

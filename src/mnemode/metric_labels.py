@@ -60,14 +60,14 @@ _TRAJ_VAL = ("validation forecast error of the kept (best) model: squared error 
 
 # fitter class name -> (train_error, val_error) labels
 FIT_ERRORS: dict[str, tuple[MetricLabel, MetricLabel]] = {
-    "DerivativeRegression": (
+    "DerivativeFit": (
         MetricLabel(_REL.format(what="derivative residual targets ẋ̂ − f0(x) on the training data"), "ratio"),
         MetricLabel(_REL.format(what="derivative residual targets on the validation data"), "ratio")),
-    "FlowMapRegression": (
+    "FlowMapFit": (
         MetricLabel(_REL.format(what="flow-map residual targets (x_{n+1} − Ψ0(x_n)) / Δt on the training data"),
                     "ratio"),
         MetricLabel(_REL.format(what="flow-map residual targets on the validation data"), "ratio")),
-    "ReadoutRidge": (
+    "ReadoutRidgeFit": (
         MetricLabel(_REL.format(what="residual targets (derivative residual for a vector field, flow-map "
                                      "residual for a flow map) on the training data"), "ratio"),
         MetricLabel(_REL.format(what="residual targets on the validation data"), "ratio")),

@@ -22,6 +22,7 @@ from .closures.base import Closure, DiscreteRecurrent, Memory, Recurrent
 from .data import TrajectorySet, generate, load_trajectories
 from .errors import CheckpointError, ConfigError, MnemodeError
 from .fitting.checkpoint import checkpoint_step
+from .fitting.base import Fitter
 from .fitting.context import FitContext
 from .hybrid import HybridField, HybridFlowMap
 from .metric_labels import metrics_labels, versions
@@ -31,7 +32,7 @@ from .systems.base import System
 
 __all__ = [
     "DataSplits", "compose_config", "make_system", "prepare_data", "main_model_name", "model_specs", "build_model",
-    "fit_models", "save_model", "load_model", "assess_run", "export_run", "run_pipeline",
+    "fit_models", "save_model", "load_model", "RunModel", "load_run_model", "assess_run", "export_run", "run_pipeline",
 ]
 
 log = logging.getLogger("mnemode")
@@ -299,6 +300,48 @@ def load_model(run: RunDir, name: str, cfg: DictConfig, system: System, dt: floa
     return model, payload.get("diagnostics", {})
 
 
+@dataclass
+class RunModel:
+    """A fitted model of a run, with what using it needs: the system, the run's data, solver and warm-up."""
+
+    name: str
+    model: HybridField | HybridFlowMap
+    system: System
+    data: DataSplits
+    solver: Solver | None
+    warm_up: float
+    diagnostics: dict
+
+
+def load_run_model(run_dir: str | Path, name: str | None = None) -> RunModel:
+    """Load fitted model ``name`` (default: the main one) from a run directory alone.
+
+    The model is rebuilt from the run's stored config and its tensors loaded; the run's
+    own copy of its data comes with it, so forecasts can be driven by the run's forcing.
+
+    Example::
+
+        from mnemode import load_run_model, simulate
+        m = load_run_model("mnemode-runs/demo/2026-12-02_10-00-00")
+        x = simulate(m.model, x0, n_steps=100, dt=m.data.dt, solver=m.solver)
+
+    Raises:
+        ConfigError: a model the run did not fit. CheckpointError: a missing or damaged model file.
+    """
+    run = RunDir(run_dir)
+    cfg = run.load_config()
+    specs = model_specs(cfg)
+    name = name or main_model_name(cfg)
+    if name not in specs:
+        raise ConfigError("model name", f"is {name!r}, which this run did not fit (models: {list(specs)})",
+                          f"choose one of {list(specs)}.")
+    system = make_system(cfg)
+    data = run_data(run, cfg, system)
+    model, diagnostics = load_model(run, name, cfg, system, data.dt, data.n_forcing)
+    solver = None if isinstance(model, HybridFlowMap) else make_solver(cfg)
+    return RunModel(name, model, system, data, solver, float(cfg.warm_up), diagnostics)
+
+
 # -- stages ---------------------------------------------------------------------
 
 def _writer(run: RunDir, purge_step: int | None = None):
@@ -324,6 +367,9 @@ def fit_models(cfg: DictConfig, run: RunDir, system: System, data: DataSplits, *
             continue
         model = build_model(spec, system, data.dt, dtype, what=f"{name}.closure", n_forcing=data.n_forcing)
         fitter = _instantiate(spec.fit, f"{name}.fit")
+        if not isinstance(fitter, Fitter):
+            raise ConfigError(f"{name}.fit._target_", f"built a {type(fitter).__name__}, expected a mnemode Fitter",
+                              "point it at a class in mnemode.fitting (or a Fitter subclass of your own).")
         torch.manual_seed(int(cfg.seed))
         # a resumed fit continues its TensorBoard curves from the checkpointed step
         start_step = checkpoint_step(run.checkpoint_dir(name)) if resume else None

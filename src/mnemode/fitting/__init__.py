@@ -1,8 +1,9 @@
 """Ways to fit a closure: regression on targets, trajectory fitting, ridge readouts."""
 
+from .base import Fitter
 from .context import FitContext
 
-__all__ = ["FitContext"]
+__all__ = ["Fitter", "FitContext"]
 
 from .regression import DerivativeFit, FlowMapFit, set_scaling
 from .targets import derivative_targets, flow_map_targets

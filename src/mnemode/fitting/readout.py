@@ -37,6 +37,7 @@ import torch
 from ..assess.forecasts import model_dtype
 from ..data import FD_SCHEMES, TrajectorySet
 from ..closures.base import LinearReadout
+from .base import Fitter
 from ..errors import ConfigError, DataError, FitDiverged
 from ..hybrid import Forcing, HybridField, HybridFlowMap, warm_up
 from ..linalg import ridge_solve
@@ -120,7 +121,7 @@ def _features(model, data: TrajectorySet, solver, scheme, discard: int, dtype, t
     return phi.reshape(-1, phi.shape[-1]), rho.reshape(-1, rho.shape[-1])
 
 
-class ReadoutRidgeFit:
+class ReadoutRidgeFit(Fitter):
     """Fit a closure's linear readout by ridge regression on observation-driven hidden states.
 
     The maths is in the module docstring. Works for closures that expose

@@ -31,6 +31,7 @@ import torch
 
 from ..closures.base import Closure, Memory, RegressionFittable
 from ..data import FD_SCHEMES, TrajectorySet
+from .base import Fitter
 from ..errors import ConfigError, DataError, FitDiverged
 from ..hybrid import HybridField, HybridFlowMap
 from ..solvers import RK4, FlowMap
@@ -115,7 +116,7 @@ def _subsample(inputs, targets, max_samples, gen):
     return inputs[keep], targets[keep]
 
 
-class _RegressionFit:
+class _RegressionFit(Fitter):
     """Shared steps of the regression fitters (see the module docstring)."""
 
     name = "regression"

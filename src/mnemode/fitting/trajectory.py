@@ -60,6 +60,7 @@ from ..assess.forecasts import choose_starts, model_dtype
 from ..assess.metrics import validity_times
 from ..data import TrajectorySet, take_windows
 from ..closures.base import LinearReadout, Memory
+from .base import Fitter
 from ..errors import CheckpointError, ConfigError, DataError, FitDiverged
 from ..hybrid import Forcing, HybridField, HybridFlowMap, simulate, warm_up
 from .checkpoint import has_checkpoint, load_checkpoint, load_state_checked, save_checkpoint
@@ -157,7 +158,7 @@ class _Diverged(Exception):
         self.what = what
 
 
-class TrajectoryFit:
+class TrajectoryFit(Fitter):
     """Fit a hybrid model's closure through warm-up + forecast unrolls (module docstring).
 
     Args:
