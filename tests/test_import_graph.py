@@ -3,7 +3,7 @@
 Stages, lowest first (a module may import its own stage and those below it):
 
     base        errors, fileio, version, linalg, configs_path, config_docs, metric_labels,
-                reproducible
+                reproducible, distributed
     physics     systems, solvers, data, lyapunov
     closures    closures
     hybrid      hybrid
@@ -37,7 +37,7 @@ STAGES = ["base", "physics", "closures", "hybrid", "shared", "fitting", "assess"
 PLACES = {
     "__init__": "command",  # the public API re-exports from every stage
     "errors": "base", "fileio": "base", "version": "base", "linalg": "base", "configs_path": "base",
-    "config_docs": "base", "metric_labels": "base", "reproducible": "base",
+    "config_docs": "base", "metric_labels": "base", "reproducible": "base", "distributed": "base",
     "systems": "physics", "solvers": "physics", "data": "physics", "lyapunov": "physics",
     "closures": "closures",
     "hybrid": "hybrid",

@@ -82,6 +82,17 @@ def _hydra(command: str, rest: list[str]) -> None:
 
     from .configs_path import config_dir
 
+    worker_dir = None
+    if command in ("run", "fit"):
+        from . import distributed
+
+        if distributed.init_from_env() and not distributed.is_main():
+            # a data-parallel worker writes nothing: its Hydra output goes to a scratch folder
+            import tempfile
+
+            worker_dir = tempfile.mkdtemp(prefix="mnemode-worker-")
+            rest = [*rest, f"hydra.run.dir={worker_dir}", "hydra.job_logging.root.level=WARNING"]
+
     def task(cfg) -> None:
         from hydra.core.hydra_config import HydraConfig
 
@@ -98,6 +109,10 @@ def _hydra(command: str, rest: list[str]) -> None:
         hydra.main(version_base=None, config_path=str(config_dir()), config_name="mnemode")(task)()
     finally:
         sys.argv = saved
+        if worker_dir is not None:
+            import shutil
+
+            shutil.rmtree(worker_dir, ignore_errors=True)
 
 
 def _dispatch(command: str, cfg, run_dir: Path) -> None:
@@ -119,7 +134,18 @@ def _dispatch(command: str, cfg, run_dir: Path) -> None:
         print(_memory_report(report))
         return
     stages = ("fit",) if command == "fit" else ("fit", "assess", "export")
-    run = pipeline.run_pipeline(cfg, run_dir, stages=stages)
+    from . import distributed
+
+    if distributed.world_size() > 1:  # launched by torchrun: fit data-parallel in rank 0's run directory
+        run_dir = Path(distributed.shared_value(str(run_dir)))
+        if not distributed.is_main():
+            pipeline.fit_worker(cfg, run_dir)
+            distributed.finish()
+            return
+        run = pipeline.run_pipeline(cfg, run_dir, stages=stages)
+        distributed.finish()
+    else:
+        run = pipeline.run_pipeline(cfg, run_dir, stages=stages)
     _print_summary(run)
 
 

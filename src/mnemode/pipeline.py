@@ -26,13 +26,14 @@ from .fitting.base import Fitter
 from .fitting.context import FitContext
 from .hybrid import HybridField, HybridFlowMap
 from .metric_labels import metrics_labels, versions
+from . import distributed
 from .rundir import RunDir
 from .solvers import RK4, FlowMap, Solver
 from .systems.base import System
 
 __all__ = [
     "DataSplits", "compose_config", "make_system", "prepare_data", "main_model_name", "model_specs", "build_model",
-    "fit_models", "save_model", "load_model", "RunModel", "load_run_model", "assess_run", "export_run", "run_pipeline",
+    "fit_models", "save_model", "load_model", "RunModel", "load_run_model", "fit_worker", "assess_run", "export_run", "run_pipeline",
 ]
 
 log = logging.getLogger("mnemode")
@@ -361,15 +362,15 @@ def fit_models(cfg: DictConfig, run: RunDir, system: System, data: DataSplits, *
         if only is not None and name not in only:
             continue
         stage = f"fit:{name}"
-        if run.stage_done(stage) and run.model_path(name).exists():
+        fitter = _fitter(spec, name)
+        done = run.stage_done(stage) and run.model_path(name).exists()
+        if _fits_together(fitter):  # the processes fitting data-parallel take rank 0's decision
+            done = distributed.shared_value(done)
+        if done:
             log.info("%s: already fitted, skipped", name)
             results[name] = run.metrics().get("fit", {}).get(name, {})
             continue
         model = build_model(spec, system, data.dt, dtype, what=f"{name}.closure", n_forcing=data.n_forcing)
-        fitter = _instantiate(spec.fit, f"{name}.fit")
-        if not isinstance(fitter, Fitter):
-            raise ConfigError(f"{name}.fit._target_", f"built a {type(fitter).__name__}, expected a mnemode Fitter",
-                              "point it at a class in mnemode.fitting (or a Fitter subclass of your own).")
         torch.manual_seed(int(cfg.seed))
         # a resumed fit continues its TensorBoard curves from the checkpointed step
         start_step = checkpoint_step(run.checkpoint_dir(name)) if resume else None
@@ -400,6 +401,48 @@ def fit_models(cfg: DictConfig, run: RunDir, system: System, data: DataSplits, *
         log.info("%s fitted in %.1f s: train error %s, validation error %s", name, diagnostics["fit_seconds"],
                  _fmt(diagnostics.get("train_error")), _fmt(diagnostics.get("val_error")))
     return results
+
+
+def _fitter(spec: DictConfig, name: str) -> Fitter:
+    fitter = _instantiate(spec.fit, f"{name}.fit")
+    if not isinstance(fitter, Fitter):
+        raise ConfigError(f"{name}.fit._target_", f"built a {type(fitter).__name__}, expected a mnemode Fitter",
+                          "point it at a class in mnemode.fitting (or a Fitter subclass of your own).")
+    return fitter
+
+
+def _fits_together(fitter: Fitter) -> bool:
+    """Whether every process of a data-parallel launch takes part in this fit (trajectory fits do)."""
+    from .fitting.trajectory import TrajectoryFit
+
+    return distributed.world_size() > 1 and isinstance(fitter, TrajectoryFit)
+
+
+def fit_worker(cfg: DictConfig, run_dir: str | Path, *, resume: bool = False) -> None:
+    """A process of rank > 0 in data-parallel fitting (see :mod:`mnemode.distributed`).
+
+    It joins every trajectory fit of the run that rank 0 makes, on the run's own copy of
+    the data, and writes nothing: rank 0 owns the run directory, checkpoints and logs.
+    Other fitters run on rank 0 alone.
+    """
+    distributed.barrier()  # rank 0 has created the run directory and written its data
+    run = RunDir(run_dir)
+    system = make_system(cfg)
+    data = run_data(run, cfg, system)
+    dtype, solver = dtype_of(cfg), make_solver(cfg)
+    lyap = system.lyapunov_exponent
+    for name, spec in model_specs(cfg).items():
+        fitter = _fitter(spec, name)
+        if not _fits_together(fitter):
+            continue
+        if distributed.shared_value(None):  # rank 0 found it already fitted
+            continue
+        model = build_model(spec, system, data.dt, dtype, what=f"{name}.closure", n_forcing=data.n_forcing)
+        torch.manual_seed(int(cfg.seed))
+        ctx = FitContext(solver=solver, warm_up=float(cfg.warm_up), lyapunov_time=(1.0 / lyap) if lyap else None,
+                         writer=None, checkpoint_dir=run.checkpoint_dir(name), resume=resume,
+                         seed=int(cfg.seed), progress=False, name=name)
+        fitter.fit(model, data.train, data.val, ctx)
 
 
 def _fmt(v) -> str:
@@ -518,6 +561,7 @@ def run_pipeline(cfg: DictConfig, run_dir: str | Path, *, resume: bool = False, 
         system = make_system(cfg)
         data = run_data(run, cfg, system) if resume else prepare_data(cfg, system, progress=bool(cfg.progress))
         save_run_data(run, data)
+        distributed.barrier()  # the other processes of a data-parallel fit read the run's data now
         run.update_metrics(data={
             "source": data.source, "dt": data.dt, "n_train": data.train.n_trajectories,
             "n_val": data.val.n_trajectories, "n_test": data.test.n_trajectories,

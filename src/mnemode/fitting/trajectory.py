@@ -112,6 +112,23 @@ class _Problem:
     h0: int
     h1: int
     val: dict
+    rank: int = 0
+    world: int = 1
+    ddp: object = None  # DistributedDataParallel over the window loss when fitting data-parallel
+
+
+class _WindowLoss(torch.nn.Module):
+    """The loss of a batch of windows as a module, so DistributedDataParallel can average its gradients."""
+
+    def __init__(self, fitter: "TrajectoryFit", model, prob: _Problem):
+        super().__init__()
+        self.model, self._fitter, self._prob = model, fitter, prob
+
+    def forward(self, traj: torch.Tensor, start: torch.Tensor, n_f: int) -> torch.Tensor:
+        p = self._prob
+        pred, truth = self._fitter._run_windows(self.model, p.states, p.forcing, traj, start, p.n_warm, p.n_grad,
+                                                n_f, p.dt, p.solver, self._fitter.reforce_every)
+        return (((pred - truth) / p.x_std) ** 2).mean()
 
 
 @dataclass
@@ -388,6 +405,7 @@ class TrajectoryFit(Fitter):
         t_enter = time.perf_counter()
         params = self._trainable(model, ctx)
         prob = self._prepare(model, train, val, ctx)
+        self._data_parallel(model, prob)
         settings = self._run_settings(model, prob, ctx)
         lr0, lr1 = self._rates(self._uses_ridge(model.closure))
         optimiser = torch.optim.Adam(params, lr=lr0, weight_decay=self.weight_decay)
@@ -406,7 +424,8 @@ class TrajectoryFit(Fitter):
             self._validate_and_keep(model, prob, progress, ctx)
         model.load_state_dict(progress.best.model)
         diagnostics = self._diagnostics(progress, stop_reason, ctx, t_enter)
-        self._checkpoint(model, optimiser, gen, progress, settings, ctx, finished=True, diagnostics=diagnostics)
+        if prob.rank == 0:
+            self._checkpoint(model, optimiser, gen, progress, settings, ctx, finished=True, diagnostics=diagnostics)
         return diagnostics
 
     # -- steps of the fit ---------------------------------------------------------------
@@ -456,6 +475,21 @@ class TrajectoryFit(Fitter):
                         n_traj=train.n_trajectories, n_times=train.n_times, n_warm=n_warm, n_grad=n_grad,
                         h0=h0, h1=h1, val=v)
 
+    def _data_parallel(self, model, prob: _Problem) -> None:
+        """Inside a ``torch.distributed`` process group: shard each batch over the processes (module docstring)."""
+        from .. import distributed
+
+        prob.world, prob.rank = distributed.world_size(), distributed.rank()
+        if prob.world == 1:
+            return
+        if self.batch_size % prob.world:
+            raise ConfigError("fit.batch_size", f"is {self.batch_size}, not a multiple of the {prob.world} processes "
+                              "fitting data-parallel", f"set fit.batch_size to a multiple of {prob.world}.")
+        from torch.nn.parallel import DistributedDataParallel
+
+        # some parameters (e.g. a learned initial state under truncated warm-up) may get no gradient in a step
+        prob.ddp = DistributedDataParallel(_WindowLoss(self, model, prob), find_unused_parameters=True)
+
     def _run_settings(self, model, prob: _Problem, ctx) -> dict:
         """The record a checkpoint stores and a resume must match: fitter settings plus run settings."""
         return {"fitter": self.settings(), "warm_up": float(ctx.warm_up), "seed": int(ctx.seed),
@@ -500,7 +534,7 @@ class TrajectoryFit(Fitter):
                good: dict) -> str:
         """The optimiser loop; returns why it stopped (``budget``, ``time`` or ``early_stop``)."""
         bar = None
-        if ctx.progress and self.steps is not None:
+        if ctx.progress and self.steps is not None and prob.rank == 0:
             from tqdm.auto import tqdm
             bar = tqdm(total=self.steps, initial=progress.step, desc=f"fitting {ctx.name}", unit="step", leave=False)
         try:
@@ -519,7 +553,7 @@ class TrajectoryFit(Fitter):
                 if progress.step % self.val_every == 0:
                     self._validate_and_keep(model, prob, progress, ctx)
                     good.update(self._snapshot(model, optimiser, gen, progress))
-                if progress.step % self.checkpoint_every == 0:
+                if progress.step % self.checkpoint_every == 0 and prob.rank == 0:
                     self._checkpoint(model, optimiser, gen, progress, settings, ctx, finished=False)
         finally:
             if bar is not None:
@@ -537,14 +571,23 @@ class TrajectoryFit(Fitter):
         start = torch.randint(0, hi, (self.batch_size,), generator=gen)
         nfe_counter = prob.solver if hasattr(prob.solver, "nfe") else None  # only Adaptive counts evaluations
         nfe0 = nfe_counter.nfe if nfe_counter is not None else 0
-        pred, truth = self._run_windows(model, prob.states, prob.forcing, traj, start, prob.n_warm, prob.n_grad, n_f,
-                                        prob.dt, prob.solver, self.reforce_every)
-        loss = (((pred - truth) / prob.x_std) ** 2).mean()
-        if not bool(torch.isfinite(loss)):
-            raise _Diverged(f"the forecast loss is {float(loss.detach())} (forecast of {n_f * prob.dt:g} time units)")
         optimiser.zero_grad(set_to_none=True)
+        if prob.ddp is None:
+            pred, truth = self._run_windows(model, prob.states, prob.forcing, traj, start, prob.n_warm, prob.n_grad,
+                                            n_f, prob.dt, prob.solver, self.reforce_every)
+            loss = (((pred - truth) / prob.x_std) ** 2).mean()
+            batch_loss = loss.detach()
+        else:  # this process's share of the same batch; DDP averages the gradients over the shares
+            shard = slice(prob.rank, None, prob.world)
+            loss = prob.ddp(traj[shard], start[shard], n_f)
+            batch_loss = loss.detach().clone()
+            torch.distributed.all_reduce(batch_loss)
+            batch_loss /= prob.world
+        # backward before the check: a data-parallel forward must be followed by its backward on every process
         loss.backward()
-        loss_value = float(loss.detach())
+        loss_value = float(batch_loss)
+        if not math.isfinite(loss_value):
+            raise _Diverged(f"the forecast loss is {loss_value} (forecast of {n_f * prob.dt:g} time units)")
         grad_norm = float(torch.nn.utils.clip_grad_norm_(params, self.clip))
         if math.isfinite(grad_norm):
             optimiser.step()
@@ -556,7 +599,7 @@ class TrajectoryFit(Fitter):
                 raise _Diverged(f"{_MAX_BAD_GRADIENTS + 1} consecutive non-finite gradients")
         if not all(bool(torch.isfinite(q).all()) for q in params):
             raise _Diverged("the parameters became non-finite")
-        writer, tag, step = ctx.writer, ctx.name, progress.step
+        writer, tag, step = (ctx.writer if prob.rank == 0 else None), ctx.name, progress.step
         if writer is not None:
             writer.add_scalar(f"{tag}/train/loss", loss_value, step)
             writer.add_scalar(f"{tag}/train/grad_norm", grad_norm, step)
@@ -604,7 +647,7 @@ class TrajectoryFit(Fitter):
     def _validate_and_keep(self, model, prob: _Problem, progress: _Progress, ctx) -> None:
         """Score the model on the validation windows; keep it if it is the best so far."""
         med, mean, err = self._validate(model, prob.val)
-        if ctx.writer is not None:
+        if ctx.writer is not None and prob.rank == 0:
             at = max(0, progress.step - 1)
             ctx.writer.add_scalar(f"{ctx.name}/val/validity_median", med, at)
             ctx.writer.add_scalar(f"{ctx.name}/val/validity_mean", mean, at)
