@@ -13,21 +13,21 @@ Flow-map targets (any sampling interval Δt), *discrete* form, for
 
 Read as a vector-field correction this target is biased by O(Δt): to first order
 in ``m``, ``x_{n+1} − Ψ0(x_n) = ∫_0^Δt Φ0(Δt, s) m(x(s)) ds`` where ``Φ0`` is the
-tangent propagator of ``f0``. (On Lorenz-63 with ρ 5 % low the discrete target
-differs from the missing term by 8 % at Δt = 0.01 and 17 % at 0.02.) The
+tangent propagator of ``f0``. (tests/test_regression_fits.py measures the bias on
+Lorenz-63 with ρ 5 % low at several Δt.) The
 *continuous* form removes that bias to second order with the midpoint rule::
 
     x_mid  = ½ (Ψ0^{Δt/2}(x_n) + Ψ0^{−Δt/2}(x_{n+1}))     (half steps forward and backward)
     input  x_mid (and ½(u_n + u_{n+1})),
     target Φ0(Δt, Δt/2)⁻¹ (x_{n+1} − Ψ0(x_n)) / Δt        (Φ0 = Jacobian of the last half step at x_mid)
 
-(measured on the same Lorenz-63 case: 0.14 % at Δt = 0.01, 3 % at 0.05, 45 % at
-0.2, so it is meant for fine sampling; at coarse sampling fit the discrete form
-with a flow-map model). It is what :class:`~mnemode.hybrid.HybridField` models need.
+(its remaining bias grows quickly with Δt — measured in the same tests — so it is
+meant for fine sampling; at coarse sampling fit the discrete form with a flow-map
+model, or read the equivalent vector-field term with ``mnemode correction``). It is what :class:`~mnemode.hybrid.HybridField` models need.
 
 Forcing (``ts.forcing`` not ``None``): ``u`` is passed to ``f0`` as its third
 argument (linear in time between samples inside an interval) and appended to the
-closure inputs, so closures then take ``in_dim = dim + n_forcing`` inputs,
+closure inputs, so closures then take ``forcing_dim = n_forcing`` extra inputs,
 ordered ``[x, u]``.
 
 All results are float64 tensors ``(N, ·)`` with ``N`` = usable samples × trajectories.
