@@ -400,6 +400,8 @@ def fit_models(cfg: DictConfig, run: RunDir, system: System, data: DataSplits, *
         results[name] = diagnostics
         log.info("%s fitted in %.1f s: train error %s, validation error %s", name, diagnostics["fit_seconds"],
                  _fmt(diagnostics.get("train_error")), _fmt(diagnostics.get("val_error")))
+        if diagnostics.get("note"):
+            log.warning("%s: %s", name, diagnostics["note"])
     return results
 
 
