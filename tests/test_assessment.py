@@ -70,6 +70,7 @@ def l63():
 
 def small_settings(**kw) -> AssessSettings:
     base = dict(warm_up=1.0, horizon=4.0, n_starts=9, free_run_length=20.0, free_run_starts=3, transient=1.0,
+                stability_length=30.0,
                 acf_max_lag=1.0, n_bins=30, truth_step=0.01, seed=3)
     base.update(kw)
     return AssessSettings(**base)
@@ -212,7 +213,7 @@ class Failing(Closure):
 
 
 def test_solver_failure_is_recorded_not_raised(l63):
-    from mnemode.assess.forecasts import choose_starts, run_forecasts
+    from mnemode.forecasting import choose_starts, run_forecasts
 
     system, test = l63
     starts = choose_starts(test.n_times, test.n_trajectories, 10, 20, 5)

@@ -11,7 +11,7 @@ import pytest
 import torch
 from torch import nn
 
-from mnemode.assess.metrics import validity_times
+from mnemode.validity import validity_times
 from mnemode.closures import (Closure, GaussianProcessClosure, MLPClosure, RandomFeatureClosure,
                               RingLocalClosure)
 from mnemode.data import TrajectorySet, generate

@@ -53,8 +53,8 @@ from typing import Sequence
 import numpy as np
 import torch
 
-from ..assess.forecasts import choose_starts, model_dtype
-from ..assess.metrics import validity_times
+from ..forecasting import choose_starts, model_dtype
+from ..validity import validity_times
 from ..data import TrajectorySet, take_windows
 from ..errors import CheckpointError, ConfigError, DataError, FitDiverged
 from ..hybrid import Forcing, HybridField, HybridFlowMap, simulate, warm_up
