@@ -209,3 +209,55 @@ def test_file_data_report_claims_no_oracle_and_names_the_data_time_unit():
     assert f"≥ {m['validity_time_median']:.3g}" in text
     assert any(n.startswith("exact:") and "extend the horizon" in n for n in res["notes"])
     assert "escape" in m and m["escape"]["n_runs"] == 2 and res["free_runs"]["stability_length"] == 10.0
+
+
+@pytest.mark.slow
+def test_multiscale_truth_reports_the_observed_variables_predictability_time():
+    from mnemode.systems import lorenz96_two_scale
+
+    torch.set_num_threads(1)
+    # Two-scale Lorenz-96 with the published ratios b = c = 10 (Lorenz 1996) on a small ring: the
+    # fast Y set the largest exponent, so 1/λ is far shorter than the observed X's error growth.
+    system = lorenz96_two_scale(k=6, j=6, spin_up=3.0)
+    test = generate(system, n_trajectories=2, duration=9.0, dt=0.01, seed=2, solver=RK4(0.004))
+    s = AssessSettings(warm_up=0.0, horizon=6.0, n_starts=8, free_run_length=3.0, free_run_starts=2,
+                       transient=0.5, stability_length=3.0, acf_max_lag=0.5, n_bins=20, truth_step=0.004,
+                       lyapunov_duration=6.0)
+    res = assess_models({}, test, system, s)
+    lam, pred = res["lyapunov_exponent"], res["predictability"]
+    assert res["lyapunov_scope"].startswith("full system") and res["lyapunov_source"] == "estimated"
+    assert pred is not None and pred["time"] == pytest.approx(pred["doubling_time"] / math.log(2))
+    # Rule of thumb (time-scale ratio c = 10): the fast exponent is several times the observed growth rate.
+    assert lam * pred["time"] > 3
+    oracle = res["models"]["oracle"]
+    assert oracle["validity_time_median_predictability"] == pytest.approx(oracle["validity_time_median"] / pred["time"])
+    assert any("faster than the observed variables" in n for n in res["notes"])
+    text = render_report(res)
+    assert "largest exponent of the full system" in text and "predictability times T_p" in text
+
+
+@pytest.mark.slow
+def test_assess_command_with_overrides_reassesses_without_refitting(tmp_path, capsys):
+    import json
+
+    from mnemode.cli import main
+    from mnemode.pipeline import compose_config, run_pipeline
+
+    torch.set_num_threads(1)
+    cfg = compose_config(["baselines=none", "closure=random_features", "fit=derivative", "model.name=memoryless",
+                          "progress=false", "export.enabled=false", f"runs_root={tmp_path}", "warm_up=0",
+                          "data.n_train=3", "data.n_val=1", "data.n_test=1", "data.duration=30",
+                          "data.test_duration=30", "assess.n_starts=6", "assess.horizon=4",
+                          "assess.free_run_length=20", "assess.stability_length=30", "assess.acf_max_lag=1"])
+    run = run_pipeline(cfg, tmp_path / "run")
+    before = {p: p.stat().st_mtime_ns for p in (run.path / "models").glob("*.pt")}
+    config_text = (run.path / "config.yaml").read_text()
+    main(["assess", str(run.path), "assess.horizon=2.5", "assess.n_starts=5", "assess.gamma=0.3"])
+    metrics = json.loads((run.path / "metrics.json").read_text())["assessment"]
+    assert metrics["horizon"] == 2.5 and metrics["n_starts"] == 5 and metrics["gamma"] == 0.3
+    assert {p: p.stat().st_mtime_ns for p in (run.path / "models").glob("*.pt")} == before
+    assert (run.path / "config.yaml").read_text() == config_text
+    assert "| memoryless |" in capsys.readouterr().out
+    with pytest.raises(SystemExit) as exc:
+        main(["assess", str(run.path), "fit.steps=3"])
+    assert exc.value.code != 0 and "assess.KEY=VALUE" in capsys.readouterr().err
