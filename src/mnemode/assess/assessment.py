@@ -354,9 +354,10 @@ def _time_scales(run: _Run) -> dict:
         return out
     t2 = error_doubling_time(curves.median_error, run.plan.dt, run.settings.gamma, _DOUBLINGS)
     if t2 is None:
-        run.notes.append("The oracle's median error does not grow through the last three doublings below γ "
-                         "within the horizon, so the observed variables' predictability time is not measured; "
-                         "extend assess.horizon to measure it.")
+        if hidden:
+            run.notes.append("The oracle's median error does not grow through the last three doublings below γ "
+                             "within the horizon, so the observed variables' predictability time is not "
+                             "measured; extend assess.horizon to measure it.")
         return out
     tp = t2 / math.log(2.0)
     out["predictability"] = {
