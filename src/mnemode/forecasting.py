@@ -51,7 +51,8 @@ class Starts:
 
 
 def choose_starts(n_times: int, n_trajectories: int, n_before: int, n_after: int, n_starts: int,
-                  what: str = "test set", fix: str = "shorten assess.horizon or warm_up, or use longer test trajectories.") -> Starts:
+                  what: str = "test set",
+                  fix: str = "shorten assess.horizon or warm_up, or use longer test trajectories.") -> Starts:
     """``n_starts`` start samples, evenly spaced along the concatenated test trajectories.
 
     A start ``s`` needs ``n_before`` samples of history before it and ``n_after``
