@@ -133,6 +133,10 @@ def test_small_lorenz63_assessment_end_to_end(l63, tmp_path):
     assert floor["source"] == "independent truth run"
     assert 0 <= floor["kl_invariant"] < 1 and 0 <= floor["acf_error"] < 1
     assert m["oracle"]["kl_invariant"] == floor["kl_invariant"]
+    # The truth itself stays inside the test data's envelope widened by 10 % (the false-alarm check),
+    # while the exploding model leaves it at once.
+    assert floor["escape"]["escaped_count"] == 0
+    assert m["explosive"]["escape_fraction"] == 1.0 and m["memoryless"]["escape_fraction"] == 0.0
     for name in ("physics_only", "memoryless", "memory"):
         assert np.isfinite(m[name]["kl_invariant"]) and m[name]["kl_invariant"] >= 0
         assert np.isfinite(m[name]["acf_error"]) and m[name]["acf_error"] >= 0
@@ -147,6 +151,7 @@ def test_small_lorenz63_assessment_end_to_end(l63, tmp_path):
     assert "figures/validity_times.png" in report and "## Settings" in report
     assert "training envelope" in report and "safety" in report
     assert "| oracle |" in report and "floor" in report
+    assert "### Long-run stability" in report and "| explosive | 3/3 (100 %) |" in report
     assert sorted(writer.tags) == sorted(f"assess/{k}" for k in res["figures"])
 
     # Assessment only simulates: parameters unchanged, no gradients accumulated.

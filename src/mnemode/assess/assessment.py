@@ -444,8 +444,9 @@ def _floor(run: _Run) -> tuple[dict, _Curves | None]:
         run.bar.update(len(p.free.starts))
         kl, per = refs.histograms.kl(states)
         acf = mean_autocorrelation(states, p.n_lag, p.acf_segment, refs.pooled)
+        # The truth run judged by the same envelope rule: how often the rule fires on the truth itself.
         floor = {"kl_invariant": kl, "kl_per_component": per, "acf_error": acf_error(refs.acf, acf),
-                 "source": "independent truth run"}
+                 "source": "independent truth run", "escape": summarise_escapes(states, refs.envelope, p.dt)}
         if "oracle" in run.metrics:
             # The oracle integrates the truth equations: its long-run statistics are the floor run's.
             run.metrics["oracle"].update(kl_invariant=floor["kl_invariant"], acf_error=floor["acf_error"])

@@ -61,4 +61,9 @@ def stability_section(result: dict) -> list[str]:
         out.append(f"| {name} | {e['escaped_count']}/{e['n_runs']} ({100 * e['escape_fraction']:.0f} %) "
                    f"| {_num(e.get('escape_time_median'), '.4g')} | {times} "
                    f"| {100 * e['outside_fraction']:.1f} % |")
+    floor = (result.get("floor") or {}).get("escape")
+    if floor:
+        out.append(f"| *floor: truth run ({_num(floor['run_length'], '.4g')} time units)* "
+                   f"| {floor['escaped_count']}/{floor['n_runs']} ({100 * floor['escape_fraction']:.0f} %) "
+                   f"| {_num(floor.get('escape_time_median'), '.4g')} | – | {100 * floor['outside_fraction']:.1f} % |")
     return out + [""]
