@@ -561,7 +561,8 @@ def _write_outputs(run: _Run, result: dict, floor_curves: _Curves | None, out_di
 
 def _figures(run: _Run, result: dict, floor_curves: _Curves | None) -> dict:
     """The five assessment figures, keyed by file stem."""
-    p, s, test, refs, curves = run.plan, run.settings, run.test, run.refs, run.curves
+    p, s, test, refs = run.plan, run.settings, run.test, run.refs
+    curves = {n: run.curves[n] for n in [*p.entries, "oracle"] if n in run.curves}   # the oracle last
     colours = figs.model_colours(list(curves))
     unit = result["time_unit"]
     t = np.arange(p.n_horizon + 1) * p.dt
