@@ -10,10 +10,11 @@ import pytest
 import torch
 
 from mnemode.assess.baselines import resolve_lyapunov
-from mnemode.assess.metrics import normalised_error, rms_scale, summarise_validity, validity_times
+from mnemode.assess.metrics import summarise_validity
 from mnemode.assess.statistics import (MarginalHistograms, acf_error, autocorrelation, histogram_counts,
                                        histogram_edges, kl_divergence, marginal_kl, mean_autocorrelation)
 from mnemode.systems import lorenz63
+from mnemode.validity import normalised_error, rms_scale, validity_times
 
 scipy_stats = pytest.importorskip("scipy.stats")
 stattools = pytest.importorskip("statsmodels.tsa.stattools")

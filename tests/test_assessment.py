@@ -70,6 +70,7 @@ def l63():
 
 def small_settings(**kw) -> AssessSettings:
     base = dict(warm_up=1.0, horizon=4.0, n_starts=9, free_run_length=20.0, free_run_starts=3, transient=1.0,
+                stability_length=30.0,
                 acf_max_lag=1.0, n_bins=30, truth_step=0.01, seed=3)
     base.update(kw)
     return AssessSettings(**base)
@@ -80,10 +81,14 @@ class RecordingWriter:
 
     def __init__(self):
         self.tags = []
+        self.scalars = []
 
     def add_figure(self, tag, figure, global_step=None, close=True):
         assert figure.axes, "an empty figure was logged"
         self.tags.append(tag)
+
+    def add_scalar(self, tag, value, global_step=None):
+        self.scalars.append((tag, value, global_step))
 
 
 def test_small_lorenz63_assessment_end_to_end(l63, tmp_path):
@@ -132,6 +137,10 @@ def test_small_lorenz63_assessment_end_to_end(l63, tmp_path):
     assert floor["source"] == "independent truth run"
     assert 0 <= floor["kl_invariant"] < 1 and 0 <= floor["acf_error"] < 1
     assert m["oracle"]["kl_invariant"] == floor["kl_invariant"]
+    # The truth itself stays inside the test data's envelope widened by 10 % (the false-alarm check),
+    # while the exploding model leaves it at once.
+    assert floor["escape"]["escaped_count"] == 0
+    assert m["explosive"]["escape_fraction"] == 1.0 and m["memoryless"]["escape_fraction"] == 0.0
     for name in ("physics_only", "memoryless", "memory"):
         assert np.isfinite(m[name]["kl_invariant"]) and m[name]["kl_invariant"] >= 0
         assert np.isfinite(m[name]["acf_error"]) and m[name]["acf_error"] >= 0
@@ -146,6 +155,7 @@ def test_small_lorenz63_assessment_end_to_end(l63, tmp_path):
     assert "figures/validity_times.png" in report and "## Settings" in report
     assert "training envelope" in report and "safety" in report
     assert "| oracle |" in report and "floor" in report
+    assert "### Long-run stability" in report and "| explosive | 3/3 (100 %) |" in report
     assert sorted(writer.tags) == sorted(f"assess/{k}" for k in res["figures"])
 
     # Assessment only simulates: parameters unchanged, no gradients accumulated.
@@ -212,7 +222,7 @@ class Failing(Closure):
 
 
 def test_solver_failure_is_recorded_not_raised(l63):
-    from mnemode.assess.forecasts import choose_starts, run_forecasts
+    from mnemode.forecasting import choose_starts, run_forecasts
 
     system, test = l63
     starts = choose_starts(test.n_times, test.n_trajectories, 10, 20, 5)

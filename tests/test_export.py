@@ -24,7 +24,7 @@ import pytest
 import torch
 from scipy.integrate import solve_ivp
 
-from mnemode.assess.metrics import validity_times
+from mnemode.validity import validity_times
 from mnemode.closures.base import Closure, Scaling
 from mnemode.data import generate
 from mnemode.errors import CheckpointError, ConfigError, FitDiverged, MnemodeError

@@ -113,11 +113,11 @@ def test_run_directory_help_lists_the_runs_models(capsys, tmp_path):
     (run / "status.json").write_text(json.dumps({"state": "finished", "stages": {}}))
     (run / "metrics.json").write_text(json.dumps({"fit": {
         "memory": {"closure": "RecurrentClosure", "fitter": "TrajectoryFit"},
-        "memoryless": {"closure": "RandomFeatureClosure", "fitter": "DerivativeRegression"}}}))
+        "memoryless": {"closure": "RandomFeatureClosure", "fitter": "DerivativeFit"}}}))
     for command in ("assess", "export", "resume"):
         out = _help(capsys, command, str(run), "--help")
         assert "memory (main): RecurrentClosure by TrajectoryFit" in out
-        assert "memoryless: RandomFeatureClosure by DerivativeRegression" in out
+        assert "memoryless: RandomFeatureClosure by DerivativeFit" in out
         out = _help(capsys, command, "--help")
         assert f"mnemode {command} RUN_DIR --help" in out
 

@@ -7,7 +7,7 @@ Stages, lowest first (a module may import its own stage and those below it):
     physics     systems, solvers, data, lyapunov
     closures    closures
     hybrid      hybrid
-    shared      forecasting (what fitting and assessment share)
+    shared      forecasting, validity (what fitting and assessment share)
     fitting     fitting
     assess      assess
     export      export, simulator
@@ -41,7 +41,7 @@ PLACES = {
     "systems": "physics", "solvers": "physics", "data": "physics", "lyapunov": "physics",
     "closures": "closures",
     "hybrid": "hybrid",
-    "forecasting": "shared",
+    "forecasting": "shared", "validity": "shared",
     "fitting": "fitting",
     "assess": "assess",
     "export": "export", "simulator": "export",

@@ -23,8 +23,8 @@ import numpy as np
 import pytest
 import torch
 
-from mnemode.assess.forecasts import choose_starts, run_forecasts
-from mnemode.assess.metrics import validity_times
+from mnemode.forecasting import choose_starts, run_forecasts
+from mnemode.validity import validity_times
 from mnemode.closures import RandomFeatureClosure, RecurrentClosure, ReservoirClosure
 from mnemode.data import generate
 from mnemode.fitting import DerivativeFit, FitContext, ReadoutRidgeFit, TrajectoryFit

@@ -41,7 +41,7 @@ def run_and_readme(tmp_path):
     (run / "figures").mkdir(parents=True)
     (run / "figures" / "validity_times.png").write_bytes(b"\x89PNG fake")
     metrics = {"fit": {"memory": {"closure": "RecurrentClosure", "fitter": "TrajectoryFit", "steps": 300},
-                       "memoryless": {"closure": "RandomFeatureClosure", "fitter": "DerivativeRegression"}},
+                       "memoryless": {"closure": "RandomFeatureClosure", "fitter": "DerivativeFit"}},
                "assessment": {"models": MODELS, "warm_up": 10.0, "n_starts": 50, "oracle_noise": 1e-4,
                               "floor": {"kl_invariant": 0.0166}, "test_set": {"n_trajectories": 8}}}
     (run / "metrics.json").write_text(json.dumps(metrics))

@@ -11,7 +11,7 @@ import pytest
 import torch
 from torch import nn
 
-from mnemode.assess.metrics import validity_times
+from mnemode.validity import validity_times
 from mnemode.closures import (Recurrent, GaussianProcessClosure, MLPClosure, RandomFeatureClosure,
                               RingLocalClosure)
 from mnemode.data import TrajectorySet, generate
@@ -307,7 +307,7 @@ def test_demo_memoryless_hybrid_outlasts_the_nominal_model(demo_data):
     with torch.no_grad():
         hybrid = simulate(model, truth[0], n, dt, RK4(0.01))
         nominal = simulate(HybridField(system.nominal, None, 3), truth[0], n, dt, RK4(0.01))
-    # validity time as defined in mnemode.assess.metrics (γ = 0.5 of the truth's RMS size)
+    # validity time as defined in mnemode.validity (γ = 0.5 of the truth's RMS size)
     v_hybrid = float(np.median(validity_times(hybrid, truth, dt, gamma=0.5)[0]))
     v_nominal = float(np.median(validity_times(nominal, truth, dt, gamma=0.5)[0]))
     print(f"demo τ = 0.01: median validity nominal {v_nominal:.2f}, hybrid {v_hybrid:.2f} "

@@ -236,11 +236,35 @@ def _run_dir_arg(parser: argparse.ArgumentParser, rest: list[str]):
 def _assess(rest: list[str]) -> None:
     parser = _parser("assess", rest)
     parser.add_argument("run_dir", help="a run directory printed by `mnemode run` or `mnemode fit`")
+    parser.add_argument("overrides", nargs="*", metavar="assess.KEY=VALUE",
+                        help="assessment settings for this assessment, e.g. assess.horizon=40 assess.n_starts=100")
     args, run = _run_dir_arg(parser, rest)
     from . import pipeline
 
-    pipeline.assess_run(run)
+    cfg = _with_assess_overrides(run.load_config(), args.overrides)
+    pipeline.assess_run(run, cfg)
     _print_summary(run)
+
+
+def _with_assess_overrides(cfg, overrides: list[str]):
+    """The run's config with ``assess.KEY=VALUE`` overrides applied (the run's config.yaml is left as it is)."""
+    from omegaconf import OmegaConf
+
+    from .assess import AssessSettings
+    from .errors import ConfigError
+
+    allowed = AssessSettings.config_keys()
+    for item in overrides:
+        key, sep, _ = item.partition("=")
+        name = key.removeprefix("assess.")
+        if not sep or not key.startswith("assess.") or name not in allowed:
+            raise ConfigError(item, "is not an assessment setting override",
+                              f"write assess.KEY=VALUE with KEY one of: {', '.join(allowed)}.")
+    if not overrides:
+        return cfg
+    merged = OmegaConf.merge(cfg, OmegaConf.from_dotlist(list(overrides)))
+    log.info("assessing with overrides: %s", " ".join(overrides))
+    return merged
 
 
 def _export(rest: list[str]) -> None:

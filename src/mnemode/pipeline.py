@@ -453,36 +453,35 @@ def _fmt(v) -> str:
 
 def assess_run(run: RunDir, cfg: DictConfig | None = None, system: System | None = None,
                data: DataSplits | None = None) -> dict:
-    """Assess every fitted model of a run on its test set; writes metrics, figures, report."""
+    """Assess every fitted model of a run on its test set (never refits); writes metrics, figures, report."""
     cfg = cfg if cfg is not None else run.load_config()
-    from .assess.assessment import AssessSettings, ModelEntry, assess_models
+    from .assess import AssessSettings, ModelEntry, assess_models
+    from .assess.baselines import oracle_unavailable
 
     system = system or make_system(cfg)
     data = data or run_data(run, cfg, system)
     solver = make_solver(cfg)
+    settings = AssessSettings.from_config(cfg, solver=solver)
     models = {}
     for name in model_specs(cfg):
         model, _ = load_model(run, name, cfg, system, data.dt, data.n_forcing)
         models[name] = ModelEntry(model, None if isinstance(model, HybridFlowMap) else solver)
-    a = cfg.assess
-    settings = AssessSettings(gamma=float(a.gamma), warm_up=float(cfg.warm_up), horizon=float(a.horizon),
-                              n_starts=int(a.n_starts), free_run_length=float(a.free_run_length),
-                              n_bins=int(a.n_bins), acf_max_lag=float(a.acf_max_lag),
-                              oracle_noise=a.get("oracle_noise"), seed=int(cfg.seed),
-                              progress=bool(cfg.progress))
-    log.info("assessing %s (+ physics-only and oracle) on %d test trajectories", ", ".join(models),
+    baselines = "physics-only" + ("" if oracle_unavailable(system, data.test) else " and oracle")
+    log.info("assessing %s (+ %s) on %d test trajectories", ", ".join(models), baselines,
              data.test.n_trajectories)
-    t0 = time.perf_counter()
     writer = _writer(run)
     try:
-        result = assess_models(models, data.test, system, settings, out_dir=run.path, writer=writer)
+        result = assess_models(models, data.test, system, settings, out_dir=run.path, writer=writer,
+                               envelope=data.train.envelope())
         _run_figures(run, result, models, data, settings, system, writer)
     finally:
         writer.flush()
         writer.close()
     run.update_metrics(assessment=result, labels=metrics_labels(run.metrics().get("fit")), **_flat_metrics(result))
     run.mark("assess")
-    log.info("assessment done in %.1f s: report %s", time.perf_counter() - t0, run.path / "report.md")
+    for note in result.get("notes", []):
+        log.info("assessment note: %s", note)
+    log.info("assessment done in %.1f s: report %s", result["cost_seconds"], run.path / "report.md")
     return result
 
 
@@ -500,11 +499,13 @@ def _run_figures(run: RunDir, result: dict, models: dict, data: DataSplits, sett
 
 
 def _flat_metrics(result: dict) -> dict:
-    """Top-level keys users look for first: gamma, lyapunov_time, floor, per-model figures."""
-    keys = ("validity_time_median", "validity_time_q25", "validity_time_q75", "kl_invariant", "acf_error")
+    """Top-level keys users look for first: gamma, time scales, floor, per-model figures."""
+    keys = ("validity_time_median", "validity_time_median_lower_bound", "validity_time_q25", "validity_time_q75",
+            "censored_fraction", "kl_invariant", "acf_error", "escape_fraction")
     return {
         "gamma": result.get("gamma"),
         "lyapunov_time": result.get("lyapunov_time"),
+        "predictability_time": (result.get("predictability") or {}).get("time"),
         "floor": result.get("floor"),
         "models": {n: {k: m.get(k) for k in keys} for n, m in result.get("models", {}).items()},
     }

@@ -1,4 +1,4 @@
-"""Assess several models on one shared test set: forecast skill and long-run statistics.
+"""Assess several models on one shared test set: forecast skill, long-run statistics, stability.
 
 :func:`assess_models` takes fitted models (it only simulates them, never refits),
 the test trajectories and the system, and measures for every model
@@ -6,41 +6,60 @@ the test trajectories and the system, and measures for every model
 * **validity time** — from ``n_starts`` starts spread along the test trajectories,
   each model's hidden state warmed up on the preceding ``warm_up`` time units of
   observations, then free-run for ``horizon``: the time until
-  ``‖x̂ − x‖ / RMS(x) > γ`` (median and quartiles; also in Lyapunov times);
+  ``‖x̂ − x‖ / RMS(x) > γ`` (median and quartiles, flagged as lower bounds where
+  they rest on forecasts censored at the horizon; also in Lyapunov times and, with
+  an oracle, in predictability times of the observed variables);
 * **invariant-measure KL** — KL(truth ‖ model) of the 1-D marginals of long
   free runs against the test data (:mod:`mnemode.assess.statistics`);
 * **autocorrelation error** — RMS difference of the ACFs up to ``acf_max_lag``;
+* **stability** — the share of free runs of ``stability_length`` that leave the
+  training envelope, and when (:mod:`mnemode.assess.stability`);
 
 next to the physics-only model (added if missing), the oracle (the truth from
-perturbed true full states) and the floor (an independent truth run scored the
-same way). It returns plain, JSON-ready data and optionally writes PNG figures,
-``report.md`` and TensorBoard figures.
+perturbed true full states; only when a truth model and its hidden components
+are known) and the floor (an independent truth run, or one half of the test set
+against the other, scored the same way). It returns plain, JSON-ready data and
+optionally writes PNG figures, ``report.md`` and TensorBoard figures.
+
+The steps, in order: :func:`_plan` (starts, windows, free-run lengths),
+:func:`_references` (Lyapunov exponent, histograms, ACF, envelope),
+:func:`_run_oracle`, :func:`_time_scales`, :func:`_score_model` for each model,
+:func:`_floor`, :func:`_result`, :func:`_write_outputs`.
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, fields
+import time
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
 from ..data import TrajectorySet, validate
 from ..errors import ConfigError
+from ..forecasting import RunOutcome, Starts, choose_starts, run_forecasts
 from ..hybrid import HybridField, HybridFlowMap
 from ..solvers import RK4, Solver
 from ..systems.base import System
+from ..validity import normalised_error, rms_scale, validity_times
 from . import figures as figs
 from .baselines import (oracle_forecasts, oracle_noise_level, oracle_unavailable, physics_only_model,
                         resolve_lyapunov, truth_run)
-from .forecasts import RunOutcome, Starts, choose_starts, run_forecasts
-from .metrics import normalised_error, rms_scale, summarise_validity, validity_times
-from .report import metrics_table, write_report
+from .metrics import error_doubling_time, summarise_validity
+from .report import write_report
+from .settings import AssessSettings
+from .stability import Envelope, summarise_escapes
 from .statistics import MarginalHistograms, acf_error, mean_autocorrelation
 
-__all__ = ["ModelEntry", "AssessSettings", "assess_models", "metrics_table", "RESERVED_NAMES"]
+__all__ = ["ModelEntry", "assess_models", "RESERVED_NAMES", "DATA_TIME_UNIT"]
 
 RESERVED_NAMES = ("oracle",)
+DATA_TIME_UNIT = "time unit of the data"
+# Doublings of the oracle's median error, below γ, that measure the observed variables' error growth.
+_DOUBLINGS = 3
+# λ·T_p above which the largest exponent is called faster than the observed variables' error growth.
+_FAST_EXPONENT_RATIO = 2.0
 
 
 @dataclass
@@ -51,101 +70,162 @@ class ModelEntry:
     solver: Solver | None = None
 
 
+# -- state objects --------------------------------------------------------------------
+
 @dataclass
-class AssessSettings:
-    """How the assessment is run. Times are in the system's time units.
+class _FreeRuns:
+    """Where the long free runs start and how their samples are used (counts of intervals)."""
 
-    Attributes:
-        gamma: validity threshold on the normalised error ``‖x̂ − x‖ / RMS(x)``.
-        warm_up: observed history driving each model's hidden state before a forecast.
-        horizon: forecast length; forecasts still valid then are censored.
-        n_starts: forecast starts spread along the test trajectories.
-        free_run_length: length of each long free run for invariant statistics.
-        free_run_starts: number of free runs (each from the end of a warm-up).
-        transient: time discarded at the start of each free run.
-        n_bins: inner histogram bins per component for the invariant measure.
-        acf_max_lag: largest autocorrelation lag.
-        oracle_noise: oracle start perturbation relative to each component's std;
-            ``None``: the data's noise level, or 1e-4 for clean data.
-        seed: seeds the oracle perturbation, the floor run and the Lyapunov estimate.
-        progress: show a progress bar.
-        pseudo_count: added to every histogram bin before normalising.
-        truth_step: RK4 step limit for truth runs (oracle, floor, Lyapunov estimate).
-        lyapunov_duration: averaging time of the Lyapunov estimate when the system states none.
-        solver: for continuous models given without one (and the added physics-only
-            model); ``None``: the first solver among the entries, else ``RK4(min(dt, 0.01))``.
-        batch_size: forecasts run together (all at once when ``None``).
-        max_components: panels per figure for systems with many components.
+    starts: Starts
+    n_transient: int
+    n_statistics: int
+    n_total: int
+
+    def statistics_window(self, states: np.ndarray) -> np.ndarray:
+        return states[self.n_transient: self.n_transient + self.n_statistics + 1]
+
+
+@dataclass
+class _Plan:
+    """What is run: the models, the forecast starts and truth windows, the free runs."""
+
+    entries: dict
+    dt: float
+    n_warm: int
+    n_horizon: int
+    starts: Starts
+    truth: np.ndarray                   # (n_horizon + 1, N, D) truth after each start
+    scale: float
+    free: _FreeRuns
+    n_lag: int
+    acf_segment: int                    # samples per ACF segment
+
+
+@dataclass
+class _References:
+    """What models are compared with: time scale, invariant measure, ACF, envelope."""
+
+    lyapunov_exponent: float | None
+    lyapunov_source: str | None
+    histograms: MarginalHistograms
+    acf: np.ndarray
+    pooled: bool
+    envelope: Envelope
+
+
+@dataclass
+class _Curves:
+    """Arrays one model contributes to the figures."""
+
+    forecast: np.ndarray
+    median_error: np.ndarray
+    validity: np.ndarray
+    counts: list | None = None
+    acf: np.ndarray | None = None
+
+
+@dataclass
+class _Run:
+    """Everything the steps share: inputs, plan, references, notes and the results so far."""
+
+    test: TrajectorySet
+    system: System
+    settings: AssessSettings
+    plan: _Plan
+    refs: _References
+    notes: list[str]
+    bar: object = None
+    time_scales: dict = field(default_factory=dict)
+    metrics: dict[str, dict] = field(default_factory=dict)
+    curves: dict[str, _Curves] = field(default_factory=dict)
+
+
+# -- the assessment -------------------------------------------------------------------
+
+def assess_models(models: dict, test: TrajectorySet, system: System, settings: AssessSettings | None = None,
+                  out_dir: str | Path | None = None, writer=None, envelope: dict | None = None) -> dict:
+    """Score every model and the baselines on one test set; optionally write figures and a report.
+
+    Args:
+        models: name → :class:`ModelEntry` (a bare hybrid model is accepted as
+            ``ModelEntry(model, None)``). ``physics_only`` is added if missing.
+        test: test trajectories ``(T, B, D)``; ``test.hidden`` enables the oracle.
+        system: the system (nominal physics, truth if known, Lyapunov exponent, ring).
+        settings: :class:`AssessSettings` (defaults when ``None``).
+        out_dir: if given, PNG figures go to ``out_dir/figures/`` and the report
+            to ``out_dir/report.md`` (``metrics.json`` is the caller's).
+        writer: a TensorBoard ``SummaryWriter``; figures are added with ``add_figure``.
+        envelope: the training data's per-component ``[min, max]`` (as
+            :meth:`TrajectorySet.envelope` gives it); ``None``: the test set's range.
+
+    Returns:
+        Plain JSON-ready dict: ``gamma``, ``lyapunov_time``, ``lyapunov_exponent``,
+        ``lyapunov_source``, ``lyapunov_scope``, ``predictability`` (the observed
+        variables' error growth, or ``None``), ``warm_up``, ``horizon``,
+        ``n_starts``, ``dt``, ``scale``, ``time_unit``, ``envelope``, ``models``
+        (name → ``validity_time_median``, ``_q25``, ``_q75``, their
+        ``_lyapunov``, ``_predictability`` and ``_lower_bound`` versions,
+        ``censored_fraction``, ``censored_count``, ``kl_invariant``, ``acf_error``,
+        ``blew_up``, ``escape_fraction``, ``escape`` (see
+        :func:`mnemode.assess.stability.summarise_escapes`), ``validity_times``, ...),
+        ``floor``, ``notes``, ``settings``, ``figures``, ``report`` and
+        ``cost_seconds``. Non-finite numbers appear as ``None``.
+
+    Raises:
+        ConfigError: bad settings or model entries.
+        DataError: a test set that is invalid or too short for warm-up plus horizon.
     """
-
-    gamma: float = 0.5
-    warm_up: float = 5.0
-    horizon: float = 25.0
-    n_starts: int = 50
-    free_run_length: float = 500.0
-    free_run_starts: int = 8
-    transient: float = 10.0
-    n_bins: int = 50
-    acf_max_lag: float = 5.0
-    oracle_noise: float | None = None
-    seed: int = 0
-    progress: bool = False
-    pseudo_count: float = 0.5
-    truth_step: float = 0.005
-    lyapunov_duration: float = 100.0
-    solver: Solver | None = None
-    batch_size: int | None = None
-    max_components: int = 4
-
-    def check(self) -> None:
-        """Raise :class:`ConfigError` naming the first setting out of range."""
-        positive = ("gamma", "horizon", "n_starts", "free_run_length", "free_run_starts", "n_bins",
-                    "acf_max_lag", "truth_step", "lyapunov_duration", "max_components")
-        for name in positive:
-            v = getattr(self, name)
-            if not isinstance(v, (int, float)) or not math.isfinite(v) or v <= 0:
-                raise ConfigError(f"assess.{name}", f"is {v!r}; it must be a positive number",
-                                  f"set assess.{name} to a value > 0.")
-        for name in ("warm_up", "transient", "pseudo_count"):
-            v = getattr(self, name)
-            if not isinstance(v, (int, float)) or not math.isfinite(v) or v < 0:
-                raise ConfigError(f"assess.{name}" if name != "warm_up" else "warm_up",
-                                  f"is {v!r}; it must be a number ≥ 0", "set it to a value ≥ 0.")
-        if self.oracle_noise is not None and not (math.isfinite(self.oracle_noise) and self.oracle_noise >= 0):
-            raise ConfigError("assess.oracle_noise", f"is {self.oracle_noise!r}; it must be ≥ 0 or null",
-                              "set it to e.g. 1e-4, or null for the data's noise level.")
-        if self.batch_size is not None and self.batch_size < 1:
-            raise ConfigError("assess.batch_size", f"is {self.batch_size!r}; it must be ≥ 1 or null",
-                              "set it to a positive integer or null.")
-
-    def to_dict(self) -> dict:
-        """Plain-data copy (the solver as its ``repr``)."""
-        d = {f.name: getattr(self, f.name) for f in fields(self)}
-        d["solver"] = None if self.solver is None else repr(self.solver)
-        return d
+    t0 = time.perf_counter()
+    settings = settings or AssessSettings()
+    settings.check()
+    validate(test, "test set", expected_dim=system.dim)
+    notes: list[str] = []
+    plan = _plan(models, test, system, settings, notes)
+    run = _Run(test, system, settings, plan, _references(test, system, settings, plan, envelope), notes)
+    run.bar = _progress(_n_runs(run), settings.progress)
+    try:
+        _run_oracle(run)
+        run.time_scales = _time_scales(run)
+        for name, entry in plan.entries.items():
+            _score_model(run, name, entry, kind="model" if name in models else "baseline")
+        floor, floor_curves = _floor(run)
+    finally:
+        run.bar.close()
+    _horizon_advice(run)
+    result = _result(run, floor)
+    result["cost_seconds"] = time.perf_counter() - t0
+    if out_dir is not None or writer is not None:
+        _write_outputs(run, result, floor_curves, out_dir, writer)
+    return result
 
 
-# -- helpers ------------------------------------------------------------------------
-
-def _plain(obj):
-    """JSON-ready copy: numpy scalars → Python, non-finite floats → ``None``."""
-    if isinstance(obj, dict):
-        return {str(k): _plain(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_plain(v) for v in obj]
-    if isinstance(obj, (bool, np.bool_)):
-        return bool(obj)
-    if isinstance(obj, (int, np.integer)):
-        return int(obj)
-    if isinstance(obj, (float, np.floating)):
-        return float(obj) if math.isfinite(obj) else None
-    if isinstance(obj, np.ndarray):
-        return _plain(obj.tolist())
-    return obj
-
+# -- step 1: plan -------------------------------------------------------------------
 
 def _steps(duration: float, dt: float) -> int:
     return int(round(duration / dt))
+
+
+def _plan(models: dict, test: TrajectorySet, system: System, settings: AssessSettings, notes: list) -> _Plan:
+    """Model entries, forecast starts and truth windows, free-run lengths, ACF lags."""
+    dt = test.dt
+    entries = _entries(models, system, settings, dt, notes)
+    n_warm, n_h = _steps(settings.warm_up, dt), _steps(settings.horizon, dt)
+    if n_h < 1:
+        raise ConfigError("assess.horizon", f"is {settings.horizon}, shorter than one sample interval ({dt})",
+                          "make the horizon at least a few sample intervals.")
+    starts = choose_starts(test.n_times, test.n_trajectories, n_warm, n_h, settings.n_starts)
+    if len(starts) < settings.n_starts:
+        notes.append(f"Only {len(starts)} distinct forecast starts fit in the test set "
+                     f"({settings.n_starts} requested).")
+    truth = np.stack([test.states[s: s + n_h + 1, b] for b, s in zip(starts.trajectory, starts.index)], axis=1)
+    free = _free_runs(test, starts, settings, n_warm, notes)
+    seg = min(test.n_times, free.n_statistics + 1)
+    n_lag = _steps(settings.acf_max_lag, dt)
+    if not 1 <= n_lag < seg:
+        raise ConfigError("assess.acf_max_lag", f"is {settings.acf_max_lag}, i.e. {n_lag} samples, but the ACF "
+                          f"segments hold {seg} samples", "choose a lag between one sample interval and a "
+                          "fraction of the test trajectories' and free runs' length.")
+    return _Plan(entries, dt, n_warm, n_h, starts, truth, rms_scale(test.states), free, n_lag, seg)
 
 
 def _entries(models: dict, system: System, settings: AssessSettings, dt: float, notes: list) -> dict:
@@ -181,159 +261,50 @@ def _entries(models: dict, system: System, settings: AssessSettings, dt: float, 
     return entries
 
 
-def _free_run_plan(test: TrajectorySet, starts: Starts, settings: AssessSettings, n_warm: int, dt: float,
-                   notes: list) -> tuple[Starts, int, int]:
-    """Starts, transient steps and recorded steps of the long free runs."""
-    n_tr, n_free = _steps(settings.transient, dt), _steps(settings.free_run_length, dt)
+def _free_runs(test: TrajectorySet, starts: Starts, settings: AssessSettings, n_warm: int, notes: list) -> _FreeRuns:
+    """Starts and lengths of the long free runs (statistics window, then on to the stability length)."""
+    dt = test.dt
+    n_tr, n_stat = _steps(settings.transient, dt), _steps(settings.free_run_length, dt)
     if test.forcing is None:
-        return starts.subset(settings.free_run_starts), n_tr, n_free
+        n_total = max(n_tr + n_stat, _steps(settings.stability_length, dt))
+        return _FreeRuns(starts.subset(settings.free_run_starts), n_tr, n_stat, n_total)
     # Forced data: runs can only be driven as far as the recorded forcing reaches.
     k = min(settings.free_run_starts, test.n_trajectories)
     total = test.n_times - 1 - n_warm
     n_tr = min(n_tr, total // 2)
     notes.append(f"The data are forced, so free runs follow the recorded forcing of {k} test trajectories "
                  f"({(total - n_tr) * dt:g} time units each after the transient) instead of "
-                 f"{settings.free_run_length:g}.")
-    return Starts(np.arange(k), np.full(k, n_warm)), n_tr, total - n_tr
+                 f"{settings.free_run_length:g}; stability is judged over the same {total * dt:g}.")
+    return _FreeRuns(Starts(np.arange(k), np.full(k, n_warm)), n_tr, total - n_tr, total)
 
 
-def _median_error(outcome_states, truth, scale) -> np.ndarray:
-    return np.median(normalised_error(outcome_states, truth, scale), axis=1)
+# -- step 2: references ---------------------------------------------------------------
 
-
-# -- the assessment -------------------------------------------------------------------
-
-def assess_models(models: dict, test: TrajectorySet, system: System, settings: AssessSettings | None = None,
-                  out_dir: str | Path | None = None, writer=None) -> dict:
-    """Score every model and the baselines on one test set; optionally write figures and a report.
-
-    Args:
-        models: name → :class:`ModelEntry` (a bare hybrid model is accepted as
-            ``ModelEntry(model, None)``). ``physics_only`` is added if missing.
-        test: test trajectories ``(T, B, D)``; ``test.hidden`` enables the oracle.
-        system: the system (nominal physics, truth if known, Lyapunov exponent, ring).
-        settings: :class:`AssessSettings` (defaults when ``None``).
-        out_dir: if given, PNG figures go to ``out_dir/figures/`` and the report
-            to ``out_dir/report.md`` (``metrics.json`` is the caller's).
-        writer: a TensorBoard ``SummaryWriter``; figures are added with ``add_figure``.
-
-    Returns:
-        Plain JSON-ready dict: ``gamma``, ``lyapunov_time``, ``lyapunov_exponent``,
-        ``lyapunov_source``, ``warm_up``, ``horizon``, ``n_starts``, ``dt``,
-        ``scale``, ``models`` (name → ``validity_time_median``, ``_q25``, ``_q75``,
-        their ``_lyapunov`` versions, ``censored_fraction``, ``censored_count``,
-        ``kl_invariant``, ``acf_error``, ``blew_up``, ``validity_times``, ...),
-        ``floor`` (``kl_invariant``, ``acf_error``, ``source``), ``notes``,
-        ``settings``, ``figures`` and ``report`` (paths relative to ``out_dir``).
-        Non-finite numbers (a model that blew up) appear as ``None``.
-
-    Raises:
-        ConfigError: bad settings or model entries.
-        DataError: a test set that is invalid or too short for warm-up plus horizon.
-    """
-    settings = settings or AssessSettings()
-    settings.check()
-    validate(test, "test set", expected_dim=system.dim)
-    dt = test.dt
-    notes: list[str] = []
-    entries = _entries(models, system, settings, dt, notes)
+def _references(test: TrajectorySet, system: System, settings: AssessSettings, plan: _Plan,
+                envelope: dict | None) -> _References:
+    """The truth's Lyapunov exponent, the test data's histograms and ACF, the training envelope."""
+    lam, source = resolve_lyapunov(system, duration=settings.lyapunov_duration, step=settings.truth_step,
+                                   seed=settings.seed)
     pooled = bool(system.ring)
+    histograms = MarginalHistograms(test.states, settings.n_bins, pooled, pseudo_count=settings.pseudo_count)
+    acf = mean_autocorrelation(test.states, plan.n_lag, plan.acf_segment, pooled)
+    if envelope is not None:
+        ranges = np.asarray([envelope[n] for n in test.names], dtype=np.float64)
+        env = Envelope.from_ranges(ranges[:, 0], ranges[:, 1], settings.envelope_margin, "training data")
+    else:
+        env = Envelope.of_samples(test.states, settings.envelope_margin, "test data")
+    return _References(lam, source, histograms, acf, pooled, env)
 
-    n_warm, n_h = _steps(settings.warm_up, dt), _steps(settings.horizon, dt)
-    if n_h < 1:
-        raise ConfigError("assess.horizon", f"is {settings.horizon}, shorter than one sample interval ({dt})",
-                          "make the horizon at least a few sample intervals.")
-    starts = choose_starts(test.n_times, test.n_trajectories, n_warm, n_h, settings.n_starts)
-    if len(starts) < settings.n_starts:
-        notes.append(f"Only {len(starts)} distinct forecast starts fit in the test set "
-                     f"({settings.n_starts} requested).")
-    truth_windows = np.stack([test.states[s: s + n_h + 1, b] for b, s in zip(starts.trajectory, starts.index)],
-                             axis=1)                                      # (n_h + 1, N, D)
-    scale = rms_scale(test.states)
-    fr_starts, n_tr, n_free = _free_run_plan(test, starts, settings, n_warm, dt, notes)
-    seg = min(test.n_times, n_free + 1)
-    n_lag = _steps(settings.acf_max_lag, dt)
-    if not 1 <= n_lag < seg:
-        raise ConfigError("assess.acf_max_lag", f"is {settings.acf_max_lag}, i.e. {n_lag} samples, but the ACF "
-                          f"segments hold {seg} samples", "choose a lag between one sample interval and a "
-                          "fraction of the test trajectories' and free runs' length.")
 
-    lam, lam_source = resolve_lyapunov(system, duration=settings.lyapunov_duration, step=settings.truth_step,
-                                       seed=settings.seed)
-    if lam_source == "not chaotic":
-        notes.append("The Lyapunov estimate on the truth was not positive; no Lyapunov-time units.")
+def _n_runs(run: _Run) -> int:
+    p = run.plan
+    oracle = 0 if oracle_unavailable(run.system, run.test) else len(p.starts)
+    floor = len(p.free.starts) if _truth_floor(run) else 0
+    return len(p.entries) * (len(p.starts) + len(p.free.starts)) + oracle + floor
 
-    reference = MarginalHistograms(test.states, settings.n_bins, pooled, pseudo_count=settings.pseudo_count)
-    ref_acf = mean_autocorrelation(test.states, n_lag, seg, pooled)
 
-    oracle_reason = oracle_unavailable(system, test)
-    use_truth_floor = system.truth is not None and test.forcing is None
-    total = len(entries) * (len(starts) + len(fr_starts)) + (0 if oracle_reason else len(starts)) \
-        + (len(fr_starts) if use_truth_floor else 0)
-    bar = _progress(total, settings.progress)
-
-    per_model: dict[str, dict] = {}
-    plots: dict[str, dict] = {}
-    try:
-        for name, e in entries.items():
-            bar.set_postfix_str(f"{name}: forecasts")
-            fc = run_forecasts(e.model, e.solver, test.states, starts, n_warm, n_h, dt, test.forcing,
-                               settings.batch_size, bar.update)
-            bar.set_postfix_str(f"{name}: free run")
-            fr = run_forecasts(e.model, e.solver, test.states, fr_starts, n_warm, n_tr + n_free, dt,
-                               test.forcing, settings.batch_size, bar.update)
-            per_model[name], plots[name] = _score(name, fc, fr, n_tr, truth_windows, dt, scale, settings, lam,
-                                                  reference, ref_acf, n_lag, seg, pooled, notes)
-            per_model[name].update(kind="model" if name in models else "baseline",
-                                   hidden_size=int(e.model.hidden_size),
-                                   form="flow map" if isinstance(e.model, HybridFlowMap) else "vector field")
-
-        oracle_level = oracle_noise_level(test, settings.oracle_noise)
-        if oracle_reason:
-            notes.append(oracle_reason[0].upper() + oracle_reason[1:] + ".")
-        else:
-            bar.set_postfix_str("oracle")
-            fc = oracle_forecasts(system, test, starts, n_h, oracle_level, settings.truth_step, settings.seed)
-            bar.update(len(starts))
-            t, c = validity_times(fc.states, truth_windows, dt, settings.gamma, scale)
-            m = summarise_validity(t, c, lam)
-            m.update(validity_times=t, kl_invariant=None, acf_error=None, blew_up=not fc.finite,
-                     kind="baseline", hidden_size=system.truth_dim - system.dim, form="truth equations",
-                     start_perturbation=oracle_level)
-            per_model["oracle"] = m
-            plots["oracle"] = dict(forecast=fc.states, median_error=_median_error(fc.states, truth_windows, scale),
-                                   validity=t, counts=None, acf=None)
-
-        bar.set_postfix_str("floor")
-        floor, floor_plot = _floor(system, test, settings, use_truth_floor, fr_starts, n_free, dt, reference,
-                                   ref_acf, n_lag, seg, pooled)
-        bar.update(len(fr_starts) if use_truth_floor else 0)
-        if "oracle" in per_model and use_truth_floor:
-            # The oracle integrates the truth equations: its long-run statistics are the floor run's.
-            per_model["oracle"].update(kl_invariant=floor["kl_invariant"], acf_error=floor["acf_error"])
-    finally:
-        bar.close()
-
-    result = {
-        "gamma": settings.gamma, "lyapunov_time": None if lam is None else 1.0 / lam,
-        "lyapunov_exponent": lam, "lyapunov_source": lam_source, "warm_up": settings.warm_up,
-        "horizon": n_h * dt, "n_starts": len(starts), "dt": dt, "scale": scale,
-        "time_unit": system.time_unit, "oracle_noise": None if oracle_reason else oracle_level,
-        "pooled": pooled, "acf_segment_length": (seg - 1) * dt,
-        "test_set": {"n_trajectories": test.n_trajectories, "n_times": test.n_times, "dt": dt,
-                     "duration": test.duration},
-        "models": per_model, "floor": floor, "notes": notes,
-        "settings": settings.to_dict(), "figures": {}, "report": None,
-    }
-    result = _plain(result)
-    if out_dir is not None or writer is not None:
-        made = _figures(result, plots, floor_plot, reference, ref_acf, test, starts, n_warm, n_h, dt, system,
-                        settings, out_dir, writer)
-        if out_dir is not None:
-            result["figures"] = made
-            write_report(result, out_dir, {_CAPTIONS[k]: v for k, v in made.items()})
-            result["report"] = "report.md"
-    return result
+def _truth_floor(run: _Run) -> bool:
+    return run.system.truth is not None and run.test.forcing is None
 
 
 def _progress(total: int, enabled: bool):
@@ -342,113 +313,253 @@ def _progress(total: int, enabled: bool):
     return tqdm(total=total, desc="assessing", unit="run", disable=not enabled, leave=False)
 
 
-def _score(name, fc: RunOutcome, fr: RunOutcome, n_tr, truth_windows, dt, scale, settings, lam,
-           reference: MarginalHistograms, ref_acf, n_lag, seg, pooled, notes) -> tuple[dict, dict]:
-    """Validity summary and long-run statistics of one model."""
-    t, c = validity_times(fc.states, truth_windows, dt, settings.gamma, scale)
-    m = summarise_validity(t, c, lam)
-    m["validity_times"] = t
-    bad_fc = int((~np.isfinite(fc.states).all(axis=(0, 2))).sum())
-    plot = dict(forecast=fc.states, median_error=_median_error(fc.states, truth_windows, scale), validity=t,
-                counts=None, acf=None)
-    runs = fr.states[n_tr:]
-    blew_up = bad_fc > 0 or not fr.finite
-    if fr.finite:
-        m["kl_invariant"], m["kl_per_component"] = reference.kl(runs)
-        model_acf = mean_autocorrelation(runs, n_lag, seg, pooled)
-        m["acf_error"] = acf_error(ref_acf, model_acf)
-        plot.update(counts=reference.counts(runs), acf=model_acf)
+# -- step 3: oracle and time scales ---------------------------------------------------
+
+def _run_oracle(run: _Run) -> None:
+    """Forecasts of the truth from perturbed true full states, when a truth model and its hidden state are known."""
+    reason = oracle_unavailable(run.system, run.test)
+    if reason:
+        run.notes.append(reason[0].upper() + reason[1:] + ".")
+        return
+    s, p = run.settings, run.plan
+    level = oracle_noise_level(run.test, s.oracle_noise)
+    run.bar.set_postfix_str("oracle")
+    fc = oracle_forecasts(run.system, run.test, p.starts, p.n_horizon, level, s.truth_step, s.seed)
+    run.bar.update(len(p.starts))
+    times, censored = validity_times(fc.states, p.truth, p.dt, s.gamma, p.scale)
+    run.metrics["oracle"] = {"validity_times": times, "_censored": censored, "kl_invariant": None, "acf_error": None,
+                             "blew_up": not fc.finite, "kind": "baseline",
+                             "hidden_size": run.system.truth_dim - run.system.dim, "form": "truth equations",
+                             "start_perturbation": level}
+    run.curves["oracle"] = _Curves(fc.states, _median_error(fc.states, p.truth, p.scale), times)
+
+
+def _time_scales(run: _Run) -> dict:
+    """Which exponent the Lyapunov units use, and the observed variables' predictability time.
+
+    The predictability time ``T_p = T_2 / ln 2`` comes from the oracle's median
+    error doubling time ``T_2`` over the last three doublings below ``γ``
+    (:func:`mnemode.assess.metrics.error_doubling_time`).
+    """
+    system, refs = run.system, run.refs
+    hidden = system.truth is not None and system.truth_dim > system.dim
+    scope = None
+    if refs.lyapunov_exponent is not None:
+        scope = "full system, hidden components included" if hidden else "observed system"
+    if refs.lyapunov_source == "not chaotic":
+        run.notes.append("The Lyapunov estimate on the truth was not positive; no Lyapunov-time units.")
+    out = {"lyapunov_scope": scope, "predictability": None}
+    curves = run.curves.get("oracle")
+    if curves is None:
+        return out
+    t2 = error_doubling_time(curves.median_error, run.plan.dt, run.settings.gamma, _DOUBLINGS)
+    if t2 is None:
+        if hidden:
+            run.notes.append("The oracle's median error does not grow through the last three doublings below γ "
+                             "within the horizon, so the observed variables' predictability time is not "
+                             "measured; extend assess.horizon to measure it.")
+        return out
+    tp = t2 / math.log(2.0)
+    out["predictability"] = {
+        "time": tp, "rate": 1.0 / tp, "doubling_time": t2,
+        "source": f"oracle forecasts: median normalised error from γ/{2 ** _DOUBLINGS:g} to γ",
+    }
+    lam = refs.lyapunov_exponent
+    if lam is not None and lam * tp > _FAST_EXPONENT_RATIO:
+        run.notes.append(
+            f"The largest Lyapunov exponent ({lam:.3g}, {scope}) is set by dynamics faster than the observed "
+            f"variables: their errors e-fold every {tp:.3g} time units near the threshold (oracle), against "
+            f"1/λ = {1 / lam:.3g}. Validity in Lyapunov times overstates how long forecasts last in units of "
+            "the observed dynamics; the predictability-time columns use T_p instead.")
+    return out
+
+
+# -- step 4: models -------------------------------------------------------------------
+
+def _score_model(run: _Run, name: str, entry: ModelEntry, kind: str) -> None:
+    """Forecasts and free runs of one model: validity, invariant statistics, stability."""
+    p, s, test = run.plan, run.settings, run.test
+    run.bar.set_postfix_str(f"{name}: forecasts")
+    fc = run_forecasts(entry.model, entry.solver, test.states, p.starts, p.n_warm, p.n_horizon, p.dt,
+                       test.forcing, s.batch_size, run.bar.update)
+    run.bar.set_postfix_str(f"{name}: free runs")
+    fr = run_forecasts(entry.model, entry.solver, test.states, p.free.starts, p.n_warm, p.free.n_total, p.dt,
+                       test.forcing, s.batch_size, run.bar.update)
+    times, censored = validity_times(fc.states, p.truth, p.dt, s.gamma, p.scale)
+    m = {"validity_times": times, "_censored": censored}
+    curves = _Curves(fc.states, _median_error(fc.states, p.truth, p.scale), times)
+    window = p.free.statistics_window(fr.states)
+    window_finite = bool(np.all(np.isfinite(window)))
+    if window_finite:
+        m["kl_invariant"], m["kl_per_component"] = run.refs.histograms.kl(window)
+        curves.acf = mean_autocorrelation(window, p.n_lag, p.acf_segment, run.refs.pooled)
+        curves.counts = run.refs.histograms.counts(window)
+        m["acf_error"] = acf_error(run.refs.acf, curves.acf)
     else:
         m["kl_invariant"], m["kl_per_component"], m["acf_error"] = None, None, None
-    m["blew_up"] = blew_up
-    if blew_up:
-        why = fc.failure or fr.failure
-        where = []
-        if bad_fc:
-            where.append(f"{bad_fc} of {fc.states.shape[1]} forecasts")
-        if not fr.finite:
-            where.append("the long free run")
-        note = f"{name} blew up (non-finite states in {' and '.join(where)})" + (f": {why}" if why else "")
-        if not fr.finite:
-            note += "; it gets no long-run statistics"
-        notes.append(note + ".")
-    return m, plot
+    escape = summarise_escapes(fr.states, run.refs.envelope, p.dt)
+    m.update(escape=escape, escape_fraction=escape["escape_fraction"], kind=kind,
+             hidden_size=int(entry.model.hidden_size),
+             form="flow map" if isinstance(entry.model, HybridFlowMap) else "vector field")
+    m["blew_up"] = _note_blow_up(run, name, fc, fr, window_finite)
+    if escape["escaped_count"]:
+        run.notes.append(f"{name} left the training envelope (margin {s.envelope_margin:g}) in "
+                         f"{escape['escaped_count']} of {escape['n_runs']} free runs of {escape['run_length']:g} "
+                         f"time units (first exit at median {escape['escape_time_median']:.4g}).")
+    run.metrics[name] = m
+    run.curves[name] = curves
 
 
-def _floor(system, test, settings, use_truth, fr_starts, n_free, dt, reference, ref_acf, n_lag, seg, pooled):
+def _note_blow_up(run: _Run, name: str, fc: RunOutcome, fr: RunOutcome, window_finite: bool) -> bool:
+    """Whether a model blew up in its forecasts or free runs; if so, a note saying where and why."""
+    bad_fc = int((~np.isfinite(fc.states).all(axis=(0, 2))).sum())
+    if bad_fc == 0 and fr.finite:
+        return False
+    where = []
+    if bad_fc:
+        where.append(f"{bad_fc} of {fc.states.shape[1]} forecasts")
+    if not fr.finite:
+        where.append("the long free runs" + ("" if window_finite else ", within the statistics window"))
+    why = fc.failure or fr.failure
+    note = f"{name} blew up (non-finite states in {' and '.join(where)})" + (f": {why}" if why else "")
+    if not window_finite:
+        note += "; it gets no long-run statistics"
+    run.notes.append(note + ".")
+    return True
+
+
+def _median_error(states, truth, scale) -> np.ndarray:
+    return np.median(normalised_error(states, truth, scale), axis=1)
+
+
+# -- step 5: floor --------------------------------------------------------------------
+
+def _floor(run: _Run) -> tuple[dict, _Curves | None]:
     """Truth-vs-truth scores: an independent truth run, or one half of the test set against the other."""
-    if use_truth:
-        runs = truth_run(system, len(fr_starts), n_free * dt, dt, settings.truth_step, settings.seed + 1)
-        kl, per = reference.kl(runs)
-        acf = mean_autocorrelation(runs, n_lag, seg, pooled)
-        floor = {"kl_invariant": kl, "kl_per_component": per, "acf_error": acf_error(ref_acf, acf),
-                 "source": "independent truth run"}
-        return floor, dict(counts=reference.counts(runs), acf=acf)
-    # No truth generator: split the test data (by trajectory, else by time) and compare the halves.
-    s = test.states
+    p, s, refs = run.plan, run.settings, run.refs
+    run.bar.set_postfix_str("floor")
+    if _truth_floor(run):
+        states = truth_run(run.system, len(p.free.starts), p.free.n_statistics * p.dt, p.dt, s.truth_step,
+                           s.seed + 1)
+        run.bar.update(len(p.free.starts))
+        kl, per = refs.histograms.kl(states)
+        acf = mean_autocorrelation(states, p.n_lag, p.acf_segment, refs.pooled)
+        # The truth run judged by the same envelope rule: how often the rule fires on the truth itself.
+        floor = {"kl_invariant": kl, "kl_per_component": per, "acf_error": acf_error(refs.acf, acf),
+                 "source": "independent truth run", "escape": summarise_escapes(states, refs.envelope, p.dt)}
+        if "oracle" in run.metrics:
+            # The oracle integrates the truth equations: its long-run statistics are the floor run's.
+            run.metrics["oracle"].update(kl_invariant=floor["kl_invariant"], acf_error=floor["acf_error"])
+        return floor, _Curves(states, np.empty(0), np.empty(0), refs.histograms.counts(states), acf)
+    s_, test = run.test.states, run.test
     if test.n_trajectories >= 2:
-        a, b = s[:, : test.n_trajectories // 2], s[:, test.n_trajectories // 2:]
+        a, b = s_[:, : test.n_trajectories // 2], s_[:, test.n_trajectories // 2:]
         how = "test set: first half of the trajectories vs the second half"
     else:
         h = test.n_times // 2
-        a, b = s[:h], s[h: 2 * h]
+        a, b = s_[:h], s_[h: 2 * h]
         how = "test set: first half in time vs the second half"
-    half_ref = MarginalHistograms(a, reference.edges[0].size - 1, pooled, pseudo_count=reference.pseudo_count)
+    half_ref = MarginalHistograms(a, refs.histograms.edges[0].size - 1, refs.pooled,
+                                  pseudo_count=refs.histograms.pseudo_count)
     kl, per = half_ref.kl(b)
-    seg_h = min(seg, a.shape[0])
-    if n_lag >= seg_h:
-        acf_err, acf_b = None, None
-    else:
-        acf_b = mean_autocorrelation(b, n_lag, seg_h, pooled)
-        acf_err = acf_error(mean_autocorrelation(a, n_lag, seg_h, pooled), acf_b)
-    return ({"kl_invariant": kl, "kl_per_component": per, "acf_error": acf_err, "source": how},
-            dict(counts=None, acf=None))
+    seg = min(p.acf_segment, a.shape[0])
+    acf_err = None
+    if p.n_lag < seg:
+        acf_err = acf_error(mean_autocorrelation(a, p.n_lag, seg, refs.pooled),
+                            mean_autocorrelation(b, p.n_lag, seg, refs.pooled))
+    return {"kl_invariant": kl, "kl_per_component": per, "acf_error": acf_err, "source": how}, None
 
 
-_CAPTIONS = {
-    "forecast_traces": "Forecasts from one test start",
-    "error_growth": "Forecast error growth",
-    "validity_times": "Validity times",
-    "invariant_densities": "Invariant densities",
-    "autocorrelation": "Autocorrelation functions",
-}
+# -- step 6: result -------------------------------------------------------------------
+
+def _horizon_advice(run: _Run) -> None:
+    """A note for every model whose median validity rests on forecasts censored at the horizon."""
+    h = run.plan.n_horizon * run.plan.dt
+    for name, m in run.metrics.items():
+        times = np.asarray(m["validity_times"])
+        censored = int(np.sum(m["_censored"]))
+        if censored * 2 > times.size:
+            run.notes.append(
+                f"{name}: {censored} of {times.size} forecasts ({100 * censored / times.size:.0f} %) are still "
+                f"valid at the horizon ({h:g} time units), so its median validity time is only a lower bound; "
+                f"extend the horizon (e.g. `mnemode assess RUN_DIR assess.horizon={2 * h:g}`).")
 
 
-def _figures(result, plots, floor_plot, reference, ref_acf, test, starts, n_warm, n_h, dt, system, settings,
-             out_dir, writer) -> dict[str, str]:
-    """Draw, save and log every figure; returns key → path relative to ``out_dir``."""
-    names = list(plots)
-    colours = figs.model_colours(names)
-    unit = system.time_unit
-    t = np.arange(n_h + 1) * dt
-    b0, s0 = int(starts.trajectory[0]), int(starts.index[0])
-    n_hist = min(n_warm, max(1, n_h // 5))
-    labels = ["pooled over ring sites"] if result["pooled"] else list(test.names)
-    built = {
-        "forecast_traces": figs.forecast_traces_figure(
-            t, test.states[s0: s0 + n_h + 1, b0], {n: p["forecast"][:, 0] for n, p in plots.items()},
-            list(test.names), colours, history_t=np.arange(-n_hist, 1) * dt,
-            history=test.states[s0 - n_hist: s0 + 1, b0],
-            validity={n: float(p["validity"][0]) for n, p in plots.items()},
-            max_components=settings.max_components, time_unit=unit),
-        "error_growth": figs.error_growth_figure(t, {n: p["median_error"] for n, p in plots.items()}, colours,
-                                                 settings.gamma, unit),
-        "validity_times": figs.validity_figure({n: p["validity"] for n, p in plots.items()}, colours,
-                                               result["horizon"], result["lyapunov_exponent"], unit),
-        "invariant_densities": figs.density_figure(
-            reference.edges, reference.reference_counts,
-            {n: p["counts"] for n, p in plots.items() if p["counts"] is not None}, colours, labels,
-            floor_counts=floor_plot["counts"], max_components=settings.max_components),
-        "autocorrelation": figs.acf_figure(
-            np.arange(ref_acf.shape[0]) * dt, ref_acf,
-            {n: p["acf"] for n, p in plots.items() if p["acf"] is not None}, colours, labels,
-            floor_acf=floor_plot["acf"], max_components=settings.max_components, time_unit=unit),
+def _result(run: _Run, floor: dict) -> dict:
+    """The plain, JSON-ready result."""
+    p, s, refs, test = run.plan, run.settings, run.refs, run.test
+    lam = refs.lyapunov_exponent
+    pred = run.time_scales.get("predictability")
+    tp = pred["time"] if pred else None
+    models = {}
+    for name in [*p.entries, *(["oracle"] if "oracle" in run.metrics else [])]:
+        m = dict(run.metrics[name])
+        censored = m.pop("_censored")
+        models[name] = {**summarise_validity(m["validity_times"], censored, lam, tp), **m}
+    result = {
+        "gamma": s.gamma, "lyapunov_time": None if lam is None else 1.0 / lam,
+        "lyapunov_exponent": lam, "lyapunov_source": refs.lyapunov_source,
+        "lyapunov_scope": run.time_scales.get("lyapunov_scope"), "predictability": pred,
+        "warm_up": s.warm_up, "horizon": p.n_horizon * p.dt, "n_starts": len(p.starts), "dt": p.dt,
+        "scale": p.scale, "time_unit": run.system.time_unit or DATA_TIME_UNIT,
+        "oracle_noise": run.metrics.get("oracle", {}).get("start_perturbation"),
+        "pooled": refs.pooled, "acf_segment_length": (p.acf_segment - 1) * p.dt,
+        "envelope": {"source": refs.envelope.source, "margin": s.envelope_margin,
+                     "lower": refs.envelope.lower, "upper": refs.envelope.upper},
+        "free_runs": {"n_runs": len(p.free.starts), "transient": p.free.n_transient * p.dt,
+                      "statistics_length": p.free.n_statistics * p.dt, "stability_length": p.free.n_total * p.dt},
+        "test_set": {"n_trajectories": test.n_trajectories, "n_times": test.n_times, "dt": p.dt,
+                     "duration": test.duration},
+        "models": models, "floor": floor, "notes": run.notes,
+        "settings": s.to_dict(), "figures": {}, "report": None,
     }
+    return _plain(result)
+
+
+def _plain(obj):
+    """JSON-ready copy: numpy scalars → Python, non-finite floats → ``None``."""
+    if isinstance(obj, dict):
+        return {str(k): _plain(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_plain(v) for v in obj]
+    if isinstance(obj, (bool, np.bool_)):
+        return bool(obj)
+    if isinstance(obj, (int, np.integer)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        return float(obj) if math.isfinite(obj) else None
+    if isinstance(obj, np.ndarray):
+        return _plain(obj.tolist())
+    return obj
+
+
+# -- step 7: figures and report --------------------------------------------------------
+
+def _write_outputs(run: _Run, result: dict, floor_curves: _Curves | None, out_dir, writer) -> None:
+    """Draw, save and log every figure (with its numbers as TensorBoard scalars); write the report."""
+    built = _figures(run, result, floor_curves)
     made = {}
-    for key, fig in built.items():
-        if out_dir is not None:
+    if out_dir is not None:
+        for key, fig in built.items():
             figs.save_figure(fig, Path(out_dir) / "figures" / f"{key}.png")
             made[key] = f"figures/{key}.png"
-        if writer is not None:
-            writer.add_figure(f"assess/{key}", fig, global_step=0, close=True)
-    return made
+    if writer is not None:
+        figs.log_figures(writer, built, figs.figure_numbers(result),
+                         {"error_growth": {f"median_error/{n}": c.median_error for n, c in run.curves.items()}})
+    if out_dir is not None:
+        result["figures"] = made
+        write_report(result, out_dir, {figs.CAPTIONS[k]: v for k, v in made.items()})
+        result["report"] = "report.md"
+
+
+def _figures(run: _Run, result: dict, floor_curves: _Curves | None) -> dict:
+    """The five assessment figures, keyed by file stem (drawn by :func:`figures.assessment_figures`)."""
+    p = run.plan
+    order = [n for n in [*p.entries, "oracle"] if n in run.curves]   # the oracle last
+    plots = {n: {"forecast": run.curves[n].forecast, "median_error": run.curves[n].median_error,
+                 "validity": run.curves[n].validity, "counts": run.curves[n].counts, "acf": run.curves[n].acf}
+             for n in order}
+    floor = {"counts": None if floor_curves is None else floor_curves.counts,
+             "acf": None if floor_curves is None else floor_curves.acf}
+    return figs.assessment_figures(result, plots, floor, run.refs.histograms, run.refs.acf, run.test, p.starts,
+                                   p.n_warm, p.n_horizon, p.dt, run.system, run.settings)

@@ -25,7 +25,7 @@ from ..hybrid import HybridField
 from ..lyapunov import largest_lyapunov_exponent
 from ..solvers import RK4
 from ..systems.base import System
-from .forecasts import RunOutcome, Starts
+from ..forecasting import RunOutcome, Starts
 
 __all__ = ["physics_only_model", "resolve_lyapunov", "oracle_noise_level", "oracle_unavailable",
            "oracle_forecasts", "truth_run"]

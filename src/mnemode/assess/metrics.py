@@ -1,89 +1,104 @@
-"""Forecast skill: validity time, its summary over many forecasts, normalised error curves.
+"""Validity times summarised over many forecasts: quartiles, censoring, lower bounds, time scales.
 
-The normalised forecast error at time ``t_n`` is ``e_n = ‖x̂_n − x_n‖ / s`` with
-``s = sqrt(mean ‖x − x̄‖²)`` the RMS size of the truth about its mean; the
-validity time is the first ``t_n`` with ``e_n > γ``. Long-run statistics
-(invariant measure, autocorrelation) live in :mod:`mnemode.assess.statistics`.
+Single forecasts are scored by :func:`mnemode.validity.validity_times`; a forecast
+still valid at the horizon ``H`` is *censored*: it enters the summary as ``H``
+although its true validity time is longer. A sample percentile that puts weight
+on a censored value is therefore only a **lower bound** (reported as ``≥ value``).
+
+With ``N`` times sorted, ``c`` of them censored (the ``c`` largest, all equal to
+``H``), numpy's default percentile ``q`` interpolates linearly between the order
+statistics at 0-based positions ``⌊p⌋`` and ``⌈p⌉``, ``p = q·(N − 1)``. It is a
+lower bound exactly when the highest position with non-zero weight (``⌈p⌉``, or
+``p`` itself when integral) is ``≥ N − c``: raising the censored values would then
+raise the percentile. For the median this is ``c ≥ N/2``.
 """
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
-__all__ = ["validity_times", "rms_scale", "normalised_error", "summarise_validity"]
+__all__ = ["summarise_validity", "percentile_is_lower_bound", "error_doubling_time"]
 
 
-def validity_times(forecast, truth, dt: float, gamma: float = 0.5, scale: float | None = None):
-    """Time until each forecast's normalised error first exceeds ``gamma``.
+def percentile_is_lower_bound(n: int, n_censored: int, q: float) -> bool:
+    """Whether numpy's linear percentile ``q`` ∈ [0, 1] of ``n`` times with ``n_censored`` censored is a lower bound.
 
-    The error at step ``n`` is ``‖x̂_n − x_n‖ / scale`` where ``scale`` is the RMS
-    size of the truth about its mean, ``sqrt(mean ‖x − x̄‖²)`` over all samples of
-    ``truth`` unless given. The validity time is ``dt`` times the index of the first
-    sample whose error exceeds ``gamma``; a forecast that never exceeds it is
-    censored at the horizon ``dt·(T − 1)``.
-
-    Args:
-        forecast, truth: ``(T, N, D)`` arrays (``N`` forecasts).
-        dt: sampling interval.
-        gamma: error threshold (0.5 by default).
-        scale: normalising size; computed from ``truth`` when ``None``.
-
-    Returns:
-        ``(times, censored)``: ``(N,)`` validity times and a boolean mask of the
-        forecasts censored at the horizon.
+    See the module docstring for the rule.
     """
-    f = np.asarray(forecast, dtype=np.float64)
-    x = np.asarray(truth, dtype=np.float64)
-    if f.shape != x.shape or f.ndim != 3:
-        raise ValueError(f"forecast {f.shape} and truth {x.shape} must both be (T, N, D)")
-    if scale is None:
-        flat = x.reshape(-1, x.shape[-1])
-        scale = float(np.sqrt(((flat - flat.mean(0)) ** 2).sum(-1).mean()))
-    err = np.linalg.norm(f - x, axis=-1) / scale
-    err = np.where(np.isfinite(err), err, np.inf)
-    exceeded = err > gamma
-    censored = ~exceeded.any(axis=0)
-    first = np.where(censored, x.shape[0] - 1, exceeded.argmax(axis=0))
-    return first * dt, censored
+    n, c = int(n), int(n_censored)
+    if n <= 0 or c <= 0:
+        return False
+    p = float(q) * (n - 1)
+    top = math.floor(p) if abs(p - round(p)) < 1e-12 else math.ceil(p)
+    return top >= n - c
 
 
-def rms_scale(states) -> float:
-    """RMS size of states about their mean, ``sqrt(mean ‖x − x̄‖²)`` over all samples of ``(..., D)``."""
-    flat = np.asarray(states, dtype=np.float64).reshape(-1, np.shape(states)[-1])
-    return float(np.sqrt(((flat - flat.mean(0)) ** 2).sum(-1).mean()))
-
-
-def normalised_error(forecast, truth, scale: float) -> np.ndarray:
-    """``‖x̂_n − x_n‖ / scale`` for ``(T, N, D)`` arrays → ``(T, N)``; non-finite forecasts give ``inf``."""
-    f = np.asarray(forecast, dtype=np.float64)
-    x = np.asarray(truth, dtype=np.float64)
-    with np.errstate(invalid="ignore", over="ignore"):
-        err = np.linalg.norm(f - x, axis=-1) / scale
-    return np.where(np.isfinite(err), err, np.inf)
-
-
-def summarise_validity(times, censored, lyapunov_exponent: float | None = None) -> dict:
-    """Median and quartiles of validity times, the censored share, and the same in Lyapunov times.
+def summarise_validity(times, censored, lyapunov_exponent: float | None = None,
+                       predictability_time: float | None = None) -> dict:
+    """Median and quartiles of validity times, the censored share, lower-bound flags, scaled versions.
 
     Quartiles use numpy's default (linear interpolation between order
-    statistics). Censored forecasts enter at the horizon, so a median with
-    more than half censored is a lower bound. Lyapunov times are ``t·λ``.
+    statistics). Censored forecasts enter at the horizon, so a percentile that
+    rests on one is flagged as a lower bound
+    (:func:`percentile_is_lower_bound`). Lyapunov times are ``t·λ``;
+    predictability times are ``t / T_p``.
 
     Returns plain floats: ``validity_time_median``, ``validity_time_q25``,
     ``validity_time_q75``, ``validity_time_{median,q25,q75}_lyapunov`` (``None``
-    without ``λ``), ``censored_fraction``, ``censored_count``, ``n_forecasts``.
+    without ``λ``), ``validity_time_{median,q25,q75}_predictability`` (``None``
+    without ``T_p``), ``validity_time_{median,q25,q75}_lower_bound`` (bools),
+    ``censored_fraction``, ``censored_count``, ``n_forecasts``.
     """
     t = np.asarray(times, dtype=np.float64)
     c = np.asarray(censored, dtype=bool)
-    q25, med, q75 = (float(v) for v in np.percentile(t, [25, 50, 75]))
-    lam = lyapunov_exponent
-    out = {
-        "validity_time_median": med, "validity_time_q25": q25, "validity_time_q75": q75,
-        "validity_time_median_lyapunov": None if lam is None else med * lam,
-        "validity_time_q25_lyapunov": None if lam is None else q25 * lam,
-        "validity_time_q75_lyapunov": None if lam is None else q75 * lam,
-        "censored_fraction": float(c.mean()) if c.size else 0.0,
-        "censored_count": int(c.sum()),
-        "n_forecasts": int(t.size),
-    }
+    values = dict(zip(("q25", "median", "q75"), (float(v) for v in np.percentile(t, [25, 50, 75]))))
+    lam, tp = lyapunov_exponent, predictability_time
+    out: dict = {}
+    for key, v in values.items():
+        out[f"validity_time_{key}"] = v
+    for key, v in values.items():
+        out[f"validity_time_{key}_lyapunov"] = None if lam is None else v * lam
+    for key, v in values.items():
+        out[f"validity_time_{key}_predictability"] = None if not tp else v / tp
+    for key, q in (("q25", 0.25), ("median", 0.5), ("q75", 0.75)):
+        out[f"validity_time_{key}_lower_bound"] = percentile_is_lower_bound(t.size, int(c.sum()), q)
+    out.update(censored_fraction=float(c.mean()) if c.size else 0.0, censored_count=int(c.sum()),
+               n_forecasts=int(t.size))
     return out
+
+
+def error_doubling_time(median_error, dt: float, gamma: float, doublings: int = 3) -> float | None:
+    """Mean doubling time of an error curve over the last ``doublings`` doublings below ``gamma``.
+
+    ``median_error`` is ``(T,)``, sampled every ``dt`` (row 0 the start). With
+    ``t(a)`` the first time the curve reaches ``a`` (log-linear interpolation
+    between samples)::
+
+        T_2 = (t(γ) − t(γ / 2^k)) / k,        k = doublings
+
+    i.e. the finite-size growth of errors just below the validity threshold,
+    which sets the validity time (for ``e(t) = e0·exp(λt)``, ``T_2 = ln 2 / λ``).
+    Returns ``None`` when the curve does not reach ``γ`` within the window or
+    starts above ``γ / 2^k``.
+    """
+    e = np.asarray(median_error, dtype=np.float64)
+    lo = float(gamma) / 2.0 ** int(doublings)
+    if e.size < 2 or not np.isfinite(e[0]) or e[0] >= lo:
+        return None
+
+    def first_crossing(level: float) -> float | None:
+        above = np.nonzero(e >= level)[0]
+        if above.size == 0:
+            return None
+        i = int(above[0])
+        a, b = e[i - 1], e[i]
+        if not (np.isfinite(b) and a > 0 and b > a):
+            return i * dt
+        return (i - 1 + math.log(level / a) / math.log(b / a)) * dt
+
+    t_hi, t_lo = first_crossing(float(gamma)), first_crossing(lo)
+    if t_hi is None or t_lo is None or t_hi <= t_lo:
+        return None
+    return (t_hi - t_lo) / int(doublings)

@@ -7,6 +7,7 @@ from pathlib import Path
 
 from ..fileio import write_text
 from ..metric_labels import fit_error_label, metric_label
+from .report_sections import stability_section, time_scale_section, validity_value
 
 __all__ = ["metrics_table", "models_table", "render_report", "write_report"]
 
@@ -27,10 +28,10 @@ def _num(v, fmt: str = ".3g") -> str:
 
 
 def _validity_cell(m: dict, suffix: str = "") -> str:
-    med = m.get(f"validity_time_median{suffix}")
-    if med is None:
+    if m.get(f"validity_time_median{suffix}") is None:
         return "–"
-    return f"{_num(med)} [{_num(m.get(f'validity_time_q25{suffix}'))}, {_num(m.get(f'validity_time_q75{suffix}'))}]"
+    return (f"{validity_value(m, 'median', suffix)} [{validity_value(m, 'q25', suffix)}, "
+            f"{validity_value(m, 'q75', suffix)}]")
 
 
 def metrics_table(result: dict) -> str:
@@ -156,6 +157,7 @@ def render_report(result: dict, figures: dict[str, str] | None = None, fit: dict
         out.append("The largest Lyapunov exponent is not known for this system, so validity is given in "
                    "time units only.")
     out.append("")
+    out += time_scale_section(result) + stability_section(result)
     if "oracle" in result.get("models", {}):
         out.append("The *oracle* is the truth system started from the true full state (hidden components "
                    f"included) perturbed by {_num(result.get('oracle_noise'))} of each component's spread: the "

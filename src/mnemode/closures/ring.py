@@ -21,7 +21,7 @@ Config (Hydra)::
       neighbours: 2
       inner:
         _target_: mnemode.closures.MLPClosure
-        _partial_: true          # the ring supplies dim=1 and in_dim=2n+1
+        _partial_: true          # the ring supplies dim=1 and n_inputs=2n+1
         width: 16
 """
 
@@ -44,7 +44,7 @@ class RingLocalClosure(Closure, RegressionFittable):
     Args:
         dim: number of sites ``K`` on the ring.
         inner: a factory (class or ``functools.partial``, e.g. Hydra ``_partial_: true``)
-            called as ``inner(dim=1, in_dim=2·neighbours+1)``, or an already built
+            called as ``inner(dim=1, n_inputs=2·neighbours+1)``, or an already built
             closure of those sizes. ``None`` gives a random-feature closure.
         neighbours: ``n``, sites on each side of ``k`` that ``m_k`` sees.
         in_dim: must equal ``dim`` (ring closures take no forcing inputs); for a

@@ -34,7 +34,7 @@ from typing import Sequence
 import numpy as np
 import torch
 
-from ..assess.forecasts import model_dtype
+from ..forecasting import model_dtype
 from ..data import FD_SCHEMES, TrajectorySet
 from ..closures.base import LinearReadout
 from .base import Fitter

@@ -56,8 +56,8 @@ from typing import Sequence
 import numpy as np
 import torch
 
-from ..assess.forecasts import choose_starts, model_dtype
-from ..assess.metrics import validity_times
+from ..forecasting import choose_starts, model_dtype
+from ..validity import validity_times
 from ..data import TrajectorySet, take_windows
 from ..closures.base import LinearReadout, Memory
 from .base import Fitter

@@ -8,7 +8,9 @@ same starts and the same warm-up history, so scores are comparable; memoryless
 models ignore the history. A long free run is the same with a longer horizon,
 of which a transient is discarded.
 
-These functions only simulate: they never change a model's parameters.
+These functions only simulate: they never change a model's parameters. Fitting
+(validation forecasts) and assessment (test forecasts) both use them, so they sit
+below both stages.
 """
 
 from __future__ import annotations
@@ -19,10 +21,10 @@ from dataclasses import dataclass
 import numpy as np
 import torch
 
-from ..data import take_windows
-from ..errors import DataError
-from ..hybrid import Forcing, HybridField, HybridFlowMap, simulate, warm_up
-from ..solvers import Solver
+from .data import take_windows
+from .errors import DataError
+from .hybrid import Forcing, HybridField, HybridFlowMap, simulate, warm_up
+from .solvers import Solver
 
 __all__ = ["Starts", "choose_starts", "model_dtype", "run_forecasts", "RunOutcome"]
 
@@ -49,7 +51,8 @@ class Starts:
 
 
 def choose_starts(n_times: int, n_trajectories: int, n_before: int, n_after: int, n_starts: int,
-                  what: str = "test set", fix: str = "shorten assess.horizon or warm_up, or use longer test trajectories.") -> Starts:
+                  what: str = "test set",
+                  fix: str = "shorten assess.horizon or warm_up, or use longer test trajectories.") -> Starts:
     """``n_starts`` start samples, evenly spaced along the concatenated test trajectories.
 
     A start ``s`` needs ``n_before`` samples of history before it and ``n_after``
