@@ -360,8 +360,15 @@ def _data_key(cfg: DictConfig) -> str:
     return hashlib.sha256(json.dumps(spec, sort_keys=True).encode()).hexdigest()[:12]
 
 
-def prepare_data(cfg: DictConfig, system: System, *, progress: bool = False) -> DataSplits:
-    """Build the configured data source and prepare the splits (generate and cache, or load)."""
+def prepare_data(cfg: DictConfig, system: System, *, progress: bool = False,
+                 check_sampling: bool = True) -> DataSplits:
+    """Build the configured data source and prepare the splits (generate and cache, or load).
+
+    With ``check_sampling``, a run that fits any model by derivative regression
+    first has its sampling interval judged
+    (:func:`~mnemode.fitting.sampling_diagnostic.sampling_advice`), and a log
+    warning names the better targets when the interval is too coarse.
+    """
     from hydra.utils import instantiate
 
     node = cfg.data
@@ -381,7 +388,44 @@ def prepare_data(cfg: DictConfig, system: System, *, progress: bool = False) -> 
     if not hasattr(source, "prepare"):
         raise ConfigError("data._target_", f"built a {type(source).__name__}, which has no prepare(system)",
                           "point it at mnemode.sources.GeneratedSource or mnemode.sources.FileSource.")
-    return source.prepare(system, progress=progress, key=_data_key(cfg))
+    data = source.prepare(system, progress=progress, key=_data_key(cfg))
+    if check_sampling:
+        warn_on_coarse_derivative_fit(cfg, system, data)
+    return data
+
+
+def _derivative_fits(cfg: DictConfig) -> list[str]:
+    """Names of the run's models fitted by derivative regression."""
+    out = []
+    model = cfg.get("model") or {}
+    fit = cfg.get("fit") or {}
+    if str(fit.get("_target_", "")).endswith("DerivativeRegression"):
+        out.append(str(model.get("name", "main model")))
+    for name, spec in (cfg.get("baselines") or {}).items():
+        if str(((spec or {}).get("fit") or {}).get("_target_", "")).endswith("DerivativeRegression"):
+            out.append(str(name))
+    return out
+
+
+def warn_on_coarse_derivative_fit(cfg: DictConfig, system: System, data: DataSplits) -> dict | None:
+    """Log a warning when a derivative fit is configured at a Δt the sampling check flags; the advice or None."""
+    names = _derivative_fits(cfg)
+    if not names or system is None:
+        return None
+    from .fitting.sampling_diagnostic import sampling_advice
+
+    physics = system.nominal if (cfg.get("model") or {}).get("physics", True) else None
+    scheme = str((cfg.get("fit") or {}).get("scheme", "central4"))
+    try:
+        advice = sampling_advice(data.train, physics, scheme=scheme)
+    except DataError as exc:
+        log.warning("sampling check skipped: %s", exc)
+        return None
+    if advice["targets"] != "derivative":
+        log.warning("%s fitted by derivative regression at Δt = %.6g, but %s; the flow-map fit avoids it "
+                    "(fit=flow_map model.form=discrete; `mnemode diagnose` gives the numbers)",
+                    ", ".join(names), advice["dt"], advice["reason"])
+    return advice
 
 
 def save_run_data(run: RunDir, data: DataSplits) -> None:
