@@ -222,8 +222,9 @@ def _read_csv(path: Path, columns: Columns, delimiter: str | None, comment: str)
     else:
         header = first
         rows = parsed[1:]
-        if all(_is_float(h) for h in header):
-            raise DataError(f"{path}, line {first_line}", "the first row holds numbers, not column names",
+        if any(_is_float(h) for h in header):
+            raise DataError(f"{path}, line {first_line}", f"the first row {header} holds numbers, not only "
+                            "column names",
                             "add a header row, or list the columns with data.column_names=[time,x,y,...].")
     if len(set(header)) != len(header):
         dup = sorted({h for h in header if header.count(h) > 1})
