@@ -1,0 +1,147 @@
+"""Data sources as configured objects, run names, and the sampling-interval advice.
+
+The advice is checked against a closed-form case: dx/dt = −a x + c with nominal
+physics f0 = −a x (missing term c). Its solution x(t) = c/a + (x0 − c/a) e^{−at}
+gives the finite-difference derivative exactly: the central4 stencil (Fornberg,
+Math. Comp. 51 (1988), Table 1) applied to e^{λt} returns λ g(λh) e^{λt} with
+g(z) = (8 sinh z − sinh 2z) / (6 z); and the continuous-form flow-map target for a
+linear field with a constant missing term is c · sinh(ah/2)/(ah/2) (the residual
+c(1 − e^{−ah})/(ah) divided by the half-step propagator e^{−ah/2}).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import torch
+from torch import nn
+
+from mnemode.data import TrajectorySet, generate
+from mnemode.errors import ConfigError
+from mnemode.fitting.sampling_diagnostic import sampling_advice, sampling_report
+from mnemode.pipeline import compose_config, prepare_data
+from mnemode.resolvers import data_run_name
+from mnemode.sources import GeneratedSource
+
+
+# -- run names ----------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("overrides, name", [
+    ([], "demo"),
+    (["data=file", "data.path=/data/tank_run_3.csv"], "tank_run_3"),
+    (["data=file", "data.path=obs/boiler_*.csv"], "boiler"),
+    (["data=file", "data.train=/x/plant/train.csv", "data.test=/x/plant/test.csv"], "plant"),
+    (["data=file", "data.path=/x/plant/obs.csv", "name=mine"], "mine"),
+    (["experiment=coarse_sampling"], "coarse_sampling"),
+])
+def test_run_family_is_named_after_the_data_or_the_preset(overrides, name):
+    cfg = compose_config(overrides)
+    assert cfg.name == name
+
+
+def test_run_name_of_a_list_of_files_and_of_nothing():
+    assert data_run_name(None, ["plant/a.csv", "plant/b.csv"]) == "a"
+    assert data_run_name(None, None) == "observations"
+
+
+# -- sources -----------------------------------------------------------------------------------
+
+def test_generated_source_is_built_from_its_config_and_matches_generate(tmp_path):
+    cfg = compose_config(["data.n_train=2", "data.n_val=1", "data.n_test=1", "data.duration=2",
+                          "data.test_duration=2", f"data.cache_dir={tmp_path}", "progress=false"])
+    from mnemode.pipeline import make_system
+
+    system = make_system(cfg)
+    data = prepare_data(cfg, system, check_sampling=False)
+    assert (data.train.n_trajectories, data.val.n_trajectories, data.test.n_trajectories) == (2, 1, 1)
+    # the same trajectories as the generator called directly with the config's settings
+    direct = generate(system, n_trajectories=3, duration=2.0, dt=0.02, seed=0,
+                      solver=__import__("mnemode.solvers", fromlist=["RK4"]).RK4(0.005))
+    np.testing.assert_allclose(data.train.states, direct.states[:, :2], rtol=0, atol=1e-12)
+    # the cache is reused on the next call
+    assert prepare_data(cfg, system, check_sampling=False).source == data.source
+
+
+def test_a_data_config_without_a_target_names_the_fix():
+    cfg = compose_config(["~data._target_"])
+    with pytest.raises(ConfigError, match="data=generated or data=file"):
+        prepare_data(cfg, None)
+
+
+def test_bad_split_option_is_a_config_error(tmp_path):
+    cfg = compose_config(["data=file", f"data.path={tmp_path / 'x.csv'}", "data.split=bogus"])
+    with pytest.raises(ConfigError, match="data.split"):
+        prepare_data(cfg, None)
+
+
+def test_generated_source_cache_key_ignores_the_run_name(tmp_path):
+    a = GeneratedSource(cache_dir=str(tmp_path), run_name="a")
+    assert a.run_name == "a"
+    k1 = __import__("mnemode.sources", fromlist=["_data_key"])._data_key(compose_config([]))
+    k2 = __import__("mnemode.sources", fromlist=["_data_key"])._data_key(compose_config(["data.run_name=other"]))
+    assert k1 == k2
+
+
+# -- sampling advice ---------------------------------------------------------------------------
+
+class _Decay(nn.Module):
+    def __init__(self, a):
+        super().__init__()
+        self.a = a
+
+    def forward(self, t, x, u=None):
+        return -self.a * x
+
+
+def _closed_form_set(a, c, h, n=200, x0=(3.0, -1.0)):
+    t = np.arange(n) * h
+    x = np.stack([c / a + (v - c / a) * np.exp(-a * t) for v in x0], axis=1)[..., None]
+    return TrajectorySet(t, x, ("x",))
+
+
+@pytest.mark.parametrize("h", [0.05, 0.4, 1.5])
+def test_advice_matches_the_closed_form_decay(h):
+    a, c = 1.3, 0.7
+    ts = _closed_form_set(a, c, h)
+    got = sampling_advice(ts, _Decay(a), psi0_substeps=50)
+    lam = -a
+
+    def g(z):
+        return (8 * np.sinh(z) - np.sinh(2 * z)) / (6 * z)
+
+    x = ts.states[..., 0]
+    rho = lam * g(lam * h) * (x - c / a) + a * x                 # central4 derivative minus f0, exactly
+    rho = rho[2:-2]
+    q = c * np.sinh(a * h / 2) / (a * h / 2)                    # continuous flow-map target, exactly
+    expected = np.sqrt(np.mean((0.5 * (rho[:-1] + rho[1:]) - q) ** 2)) / abs(q)
+    assert got["disagreement"] == pytest.approx(expected, rel=1e-4, abs=1e-9)
+    # Richardson estimate of the stencil's error at the even samples 4, 6, ...
+    xs = x[4:2 * ((len(x) - 4) // 2):2]
+    rich = lam * (g(2 * lam * h) - g(lam * h)) * (xs - c / a) / 15
+    assert got["fd_error"] == pytest.approx(np.sqrt(np.mean(rich ** 2)) / abs(q), rel=0.05)
+    assert got["targets"] == ("derivative" if expected <= 0.1 else "flow_map")
+    assert "recommendation:" in sampling_report(got)
+
+
+def test_advice_flips_between_fine_and_coarse_decay():
+    fine = sampling_advice(_closed_form_set(1.3, 0.7, 0.05), _Decay(1.3))
+    coarse = sampling_advice(_closed_form_set(1.3, 0.7, 1.5), _Decay(1.3))
+    assert (fine["targets"], fine["form"]) == ("derivative", "continuous")
+    assert (coarse["targets"], coarse["form"]) == ("flow_map", "discrete")
+    assert fine["disagreement"] < coarse["disagreement"]
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("system, overrides, dt, targets", [
+    ("thermosyphon", {}, 0.2, "flow_map"),
+    ("thermosyphon", {}, 0.02, "derivative"),
+    ("lorenz96", {"nominal_forcing": 6.0}, 0.01, "derivative"),
+    ("lorenz96", {"nominal_forcing": 6.0}, 0.1, "flow_map"),
+])
+def test_advice_on_the_demo_and_lorenz96(system, overrides, dt, targets):
+    from mnemode import systems
+    from mnemode.solvers import RK4
+
+    sysm = getattr(systems, system)(**overrides)
+    ts = generate(sysm, n_trajectories=2, duration=200 * dt, dt=dt, solver=RK4(min(dt, 0.005)), seed=0)
+    assert sampling_advice(ts, sysm.nominal)["targets"] == targets
