@@ -60,6 +60,8 @@ def _instantiate(node, what: str, **kwargs):
         raise
     except Exception as exc:  # Hydra wraps import and argument errors
         cause = exc.__cause__ or exc
+        if isinstance(cause, MnemodeError):  # a target's own clear message, unwrapped
+            raise cause from None
         raise ConfigError(what, f"could not be built from {OmegaConf.to_container(node)} ({cause})",
                           "check the _target_ and its arguments in that config group.") from None
 
