@@ -161,3 +161,19 @@ def test_advice_on_the_demo_and_lorenz96(system, overrides, dt, targets):
     sysm = getattr(systems, system)(**overrides)
     ts = generate(sysm, n_trajectories=2, duration=200 * dt, dt=dt, solver=RK4(min(dt, 0.005)), seed=0)
     assert sampling_advice(ts, sysm.nominal)["targets"] == targets
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("dt, warned", [(0.2, True), (0.02, False)])
+def test_run_warns_before_a_derivative_fit_at_a_flagged_interval(tmp_path, caplog, dt, warned):
+    from mnemode.pipeline import make_system
+
+    cfg = compose_config(["fit=derivative", "closure=random_features", f"data.dt={dt}", "data.n_train=2",
+                          "data.n_val=1", "data.n_test=1", f"data.duration={300 * dt}",
+                          f"data.test_duration={300 * dt}", f"data.cache_dir={tmp_path}", "progress=false"])
+    with caplog.at_level("WARNING", logger="mnemode"):
+        prepare_data(cfg, make_system(cfg))
+    hits = [r.message for r in caplog.records if "derivative regression" in r.message]
+    assert bool(hits) == warned
+    if warned:
+        assert "fit=flow_map model.form=discrete" in hits[0] and "Δt = 0.2" in hits[0]
