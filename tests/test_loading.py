@@ -237,3 +237,12 @@ def test_packing_covers_every_sample_and_keeps_true_start_times(tmp_path):
         np.testing.assert_allclose(ts.states[:, b, 0], np.sin(0.3 * absolute[:, b]), atol=1e-9)
     covered = {round(t, 6) for t in absolute[:, :3].ravel()}
     assert covered == {round(10.0 + 0.1 * i, 6) for i in range(23)}
+
+
+def test_system_state_names_pick_and_order_the_state_columns(tmp_path):
+    rows = [[r[0], r[1], r[3], r[2], "ok"] for r in _traj("A", 0.0, 10)]
+    path = _write(tmp_path / "obs.csv", ["t", "run", "b", "a", "note"], rows)
+    cols = Columns(time="t", trajectory="run", preferred_states=["a", "b"])
+    raws, names, _, _ = read_file(path, cols)
+    assert names == ("a", "b")
+    np.testing.assert_allclose(raws[0].states[:, 0], np.sin(0.3 * raws[0].times), atol=1e-9)

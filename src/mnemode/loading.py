@@ -50,6 +50,9 @@ class Columns:
             first non-comment line is the header).
         units: ``{column: unit}``; else a ``# units:`` line or a sidecar
             ``<stem>.units.json`` next to the file.
+        preferred_states: when ``states`` is ``None`` and the file has every one of
+            these columns, they are the states, in this order (the system's state
+            names), whatever else the file holds.
     """
 
     time: str = "time"
@@ -58,6 +61,7 @@ class Columns:
     forcing: Sequence[str] = ()
     names: Sequence[str] | None = None
     units: dict | None = None
+    preferred_states: Sequence[str] | None = None
 
     @property
     def trajectory_is_default(self) -> bool:
@@ -243,7 +247,12 @@ def _read_csv(path: Path, columns: Columns, delimiter: str | None, comment: str)
         traj_col = None
     forcing = [str(c) for c in (columns.forcing or [])]
     roles = {columns.time, *( [traj_col] if traj_col else [] ), *forcing}
-    states = [str(c) for c in columns.states] if columns.states is not None else [h for h in header if h not in roles]
+    if columns.states is not None:
+        states = [str(c) for c in columns.states]
+    elif columns.preferred_states and all(str(c) in idx for c in columns.preferred_states):
+        states = [str(c) for c in columns.preferred_states]
+    else:
+        states = [h for h in header if h not in roles]
     for col in [*states, *forcing]:
         if col not in idx:
             raise DataError(str(path), f"has no column {col!r}", fix_cols)

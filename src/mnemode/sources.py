@@ -238,6 +238,8 @@ class FileSource:
                        min_length=self.min_segment_length, dt=dt, what=what)
 
     def prepare(self, system: System, progress: bool = False, key: str = "") -> DataSplits:
+        if system is not None:
+            self.columns.preferred_states = list(system.state_names)
         explicit = {s: getattr(self, s) for s in _SPLITS if getattr(self, s) not in (None, "???")}
         if self.path not in (None, "???") and explicit:
             raise ConfigError("data.path", f"is set together with {sorted(explicit)}",
