@@ -177,3 +177,26 @@ def test_run_warns_before_a_derivative_fit_at_a_flagged_interval(tmp_path, caplo
     assert bool(hits) == warned
     if warned:
         assert "fit=flow_map model.form=discrete" in hits[0] and "Δt = 0.2" in hits[0]
+
+
+@pytest.mark.slow
+def test_the_advised_fit_wins_on_validity_at_coarse_sampling(tmp_path):
+    # the demo sampled every 0.2: both memoryless fits side by side in one run, same forecast starts
+    from mnemode.fitting.sampling_diagnostic import sampling_advice as advise
+    from mnemode.pipeline import make_system, run_pipeline
+    from mnemode.sources import run_data
+
+    cfg = compose_config(["closure=random_features", "closure.n_features=200", "fit=flow_map", "model.form=discrete",
+                          "model.name=flow_map", "baselines=none",
+                          "+closure@baselines.derivative.closure=random_features",
+                          "+fit@baselines.derivative.fit=derivative", "+baselines.derivative.form=continuous",
+                          "+baselines.derivative.physics=true", "baselines.derivative.closure.n_features=200", "data.dt=0.2", "data.n_train=3", "data.n_val=1",
+                          "data.n_test=2", "data.duration=60", "data.test_duration=40",
+                          f"data.cache_dir={tmp_path / 'cache'}", "warm_up=0", "export.enabled=false",
+                          "progress=false", "assess.n_starts=10", "assess.horizon=12", "assess.free_run_length=10",
+                          "assess.acf_max_lag=1"])
+    run = run_pipeline(cfg, tmp_path / "run")
+    system = make_system(cfg)
+    assert advise(run_data(run, cfg, system).train, system.nominal)["fit"] == "flow_map"
+    m = {k: v["validity_time_median"] for k, v in run.metrics()["models"].items()}
+    assert m["flow_map"] > 2 * m["derivative"]
