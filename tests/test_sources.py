@@ -13,7 +13,6 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-import torch
 from torch import nn
 
 from mnemode.data import TrajectorySet, generate
@@ -21,7 +20,8 @@ from mnemode.errors import ConfigError
 from mnemode.fitting.sampling_diagnostic import sampling_advice, sampling_report
 from mnemode.pipeline import compose_config, prepare_data
 from mnemode.resolvers import data_run_name
-from mnemode.sources import GeneratedSource
+from mnemode.solvers import RK4
+from mnemode.sources import GeneratedSource, _data_key
 
 
 # -- run names ----------------------------------------------------------------------------------
@@ -55,8 +55,7 @@ def test_generated_source_is_built_from_its_config_and_matches_generate(tmp_path
     data = prepare_data(cfg, system, check_sampling=False)
     assert (data.train.n_trajectories, data.val.n_trajectories, data.test.n_trajectories) == (2, 1, 1)
     # the same trajectories as the generator called directly with the config's settings
-    direct = generate(system, n_trajectories=3, duration=2.0, dt=0.02, seed=0,
-                      solver=__import__("mnemode.solvers", fromlist=["RK4"]).RK4(0.005))
+    direct = generate(system, n_trajectories=3, duration=2.0, dt=0.02, seed=0, solver=RK4(0.005))
     np.testing.assert_allclose(data.train.states, direct.states[:, :2], rtol=0, atol=1e-12)
     # the cache is reused on the next call
     assert prepare_data(cfg, system, check_sampling=False).source == data.source
@@ -77,8 +76,8 @@ def test_bad_split_option_is_a_config_error(tmp_path):
 def test_generated_source_cache_key_ignores_the_run_name(tmp_path):
     a = GeneratedSource(cache_dir=str(tmp_path), run_name="a")
     assert a.run_name == "a"
-    k1 = __import__("mnemode.sources", fromlist=["_data_key"])._data_key(compose_config([]))
-    k2 = __import__("mnemode.sources", fromlist=["_data_key"])._data_key(compose_config(["data.run_name=other"]))
+    k1 = _data_key(compose_config([]))
+    k2 = _data_key(compose_config(["data.run_name=other"]))
     assert k1 == k2
 
 
@@ -156,7 +155,6 @@ def test_measurement_noise_does_not_pass_for_a_coarse_interval():
 ])
 def test_advice_on_the_demo_and_lorenz96(system, overrides, dt, targets):
     from mnemode import systems
-    from mnemode.solvers import RK4
 
     sysm = getattr(systems, system)(**overrides)
     ts = generate(sysm, n_trajectories=2, duration=200 * dt, dt=dt, solver=RK4(min(dt, 0.005)), seed=0)

@@ -8,7 +8,6 @@ hand and call the stage libraries directly.
 from __future__ import annotations
 
 import inspect
-import json
 import logging
 import time
 from pathlib import Path
@@ -23,7 +22,7 @@ from .fitting.context import FitContext
 from .hybrid import HybridField, HybridFlowMap
 from .rundir import RunDir
 from .solvers import RK4, FlowMap, Solver
-from .sources import DataSplits, _data_key, prepare_data, run_data, save_run_data  # noqa: F401 (re-exported)
+from .sources import DataSplits, prepare_data, run_data, save_run_data
 from .systems.base import System
 
 __all__ = [
