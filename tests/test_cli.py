@@ -42,9 +42,9 @@ def test_generate_prints_where_the_data_went(tmp_path):
 
 
 def test_bad_config_value_is_one_clear_message(tmp_path):
-    r = mnemode("generate", "data.source=bogus", *TINY, cwd=tmp_path)
+    r = mnemode("generate", "data=file", "data.path=obs.csv", "data.split=bogus", "progress=false", cwd=tmp_path)
     assert r.returncode == 2
-    assert "data.source" in r.stderr and "Fix:" in r.stderr
+    assert "data.split" in r.stderr and "Fix:" in r.stderr
     assert "Traceback" not in r.stderr
 
 

@@ -146,15 +146,21 @@ def test_killed_run_resumes_and_finishes(tmp_path):
 
 
 def test_bring_your_own_physics_example_runs_end_to_end(tmp_path):
+    # from a folder of its own, as a user would: diagnose first, then the preset fits what it advised
     example = ROOT / "scripts" / "own_physics_example"
-    r = mnemode("run", "-cd", str(example), "experiment=circuit", f"data.path={example / 'observations.csv'}",
-                "progress=false", "fit.steps=10", "fit.val_every=5", "fit.val_windows=8", "fit.val_horizon=3",
-                "assess.n_starts=6", "assess.horizon=4", "assess.free_run_length=20", "warm_up=2",
-                cwd=tmp_path, env_extra={"PYTHONPATH": str(example)})
+    env = dict(os.environ, MNEMODE_RUNS=str(tmp_path / "runs"))
+    r = subprocess.run([sys.executable, str(example / "run_example.py"), "progress=false", "assess.n_starts=8",
+                        "assess.free_run_length=20"], cwd=tmp_path, env=env, capture_output=True, text=True,
+                       timeout=600)
     assert r.returncode == 0, r.stderr[-3000:]
+    assert "recommendation: derivative targets" in r.stdout and "recommendation: memoryless ->" in r.stdout
     run = run_dir_from(r.stdout)
+    assert run.parent.name == "circuit"
     metrics = json.loads((run / "metrics.json").read_text())
-    assert set(metrics["models"]) >= {"memory", "memoryless", "data_only", "physics_only"}
+    assert set(metrics["models"]) >= {"memoryless", "memory", "physics_only"}
+    m = {k: v["validity_time_median"] for k, v in metrics["models"].items() if k != "oracle"}
+    # the model diagnose recommended is the best of the run
+    assert m["memoryless"] > m["physics_only"] and m["memoryless"] >= m["memory"]
     # a system without a truth generator has no oracle; the report says so instead of failing
     assert "oracle" not in metrics["models"] or metrics["models"]["oracle"]["validity_time_median"] is None
     manifest = json.loads((run / "export" / "simulator.json").read_text())

@@ -126,12 +126,7 @@ def _dispatch(command: str, cfg, run_dir: Path) -> None:
         print(f"written to: {data.source}")
         return
     if command == "diagnose":
-        from .fitting.memory_diagnostic import memory_need
-
-        system = pipeline.make_system(cfg)
-        data = pipeline.prepare_data(cfg, system, progress=bool(cfg.progress))
-        report = memory_need(data.train, data.val, system.nominal)
-        print(_memory_report(report))
+        _diagnose(cfg, run_dir)
         return
     stages = ("fit",) if command == "fit" else ("fit", "assess", "export")
     from . import distributed
@@ -149,20 +144,77 @@ def _dispatch(command: str, cfg, run_dir: Path) -> None:
     _print_summary(run)
 
 
-def _memory_report(report: dict) -> str:
-    advice = {
-        "memory": "train a memory closure: closure=recurrent_leaky fit=trajectory "
-                  "(or closure=reservoir_filter_bank fit=readout_ridge for an answer in seconds)",
-        "memoryless": "a memoryless closure suffices: closure=random_features fit=derivative "
-                      "(fit=flow_map if the sampling is coarse)",
-    }
+def _diagnose(cfg, run_dir: Path) -> None:
+    """Advice before fitting: the data's layout, the sampling interval, the need for memory."""
+    import json
+
+    from omegaconf import OmegaConf
+
+    from . import pipeline
+    from .fileio import atomic_path
+    from .fitting.memory_diagnostic import memory_need
+    from .fitting.sampling_diagnostic import sampling_advice, sampling_report
+
+    system = pipeline.make_system(cfg)
+    data = pipeline.prepare_data(cfg, system, progress=bool(cfg.progress), check_sampling=False)
+    physics = system.nominal if cfg.model.get("physics", True) else None
+    sampling = sampling_advice(data.train, physics)
+    memory = memory_need(data.train, data.val, physics, targets=sampling["targets"])
+    text = "\n\n".join([_data_report(data), sampling_report(sampling), _memory_report(memory, sampling)])
+    result = {"data": {"source": data.source, "dt": data.dt, "layout": data.layout,
+                       "n_train": data.train.n_trajectories, "n_val": data.val.n_trajectories,
+                       "n_test": data.test.n_trajectories},
+              "sampling": sampling, "memory": memory, "command": _advised_command(memory, sampling)}
+    run_dir.mkdir(parents=True, exist_ok=True)
+    for name, body in (("diagnosis.txt", text + "\n"), ("diagnosis.json", json.dumps(result, indent=2) + "\n"),
+                       ("config.yaml", OmegaConf.to_yaml(cfg, resolve=True))):
+        path = run_dir / name
+        if path.exists():  # never overwrite what a user already has
+            raise MnemodeError(str(path), "already exists", "run diagnose again (a new run directory) or move it.")
+        with atomic_path(path) as tmp:
+            Path(tmp).write_text(body, encoding="utf-8")
+    print(text)
+    print()
+    print(f"diagnosis written to: {run_dir}")
+
+
+def _data_report(data) -> str:
+    lines = [f"Data: {data.source}",
+             f"  sampling interval {data.dt:.10g}; {data.train.n_trajectories} train, {data.val.n_trajectories} "
+             f"validation, {data.test.n_trajectories} test trajectories (pieces)"]
+    layout = data.layout or {}
+    for split in ("train", "val", "test"):
+        d = layout.get(split)
+        if d:
+            lines.append(f"  {split}: {d['trajectories']} trajectories, {d['segments']} segments, {d['samples']} "
+                         f"samples, packed into {d['pieces']} pieces of {d['piece_length']} samples")
+    if layout:
+        lines.append(f"  {layout.get('gaps', 0)} gap(s); {layout.get('dropped_segments', 0)} short segment(s) "
+                     f"dropped ({layout.get('dropped_samples', 0)} samples)")
+    return "\n".join(lines)
+
+
+def _advised_command(memory: dict, sampling: dict) -> str:
+    """The options to fit what the diagnosis recommends."""
+    coarse = sampling.get("targets") == "flow_map"
+    if memory.get("recommendation") == "memory":
+        return ("closure=gru_flow model=discrete fit=trajectory" if coarse else
+                "closure=recurrent_leaky fit=trajectory (or closure=reservoir_filter_bank fit=readout_ridge for an "
+                "answer in seconds)")
+    return ("closure=random_features fit=flow_map model=discrete" if coarse else
+            "closure=random_features fit=derivative")
+
+
+def _memory_report(report: dict, sampling: dict | None = None) -> str:
+    targets = report.get("targets", "derivative")
     lines = [
-        "Does the missing term need memory?",
+        "Does the missing term need memory?" + ("  (flow-map residuals: the sampling is coarse)"
+                                                 if targets == "flow_map" else ""),
         f"  best memoryless correction explains     {100 * report['memoryless_explained']:6.2f} % of the residual variance",
         f"  adding the recent history of x explains {100 * report['history_explained']:6.2f} %",
         f"  history explains {100 * report['remaining_explained']:.1f} % of what the memoryless fit leaves "
         f"(threshold {100 * report['threshold']:.0f} %)",
-        f"  recommendation: {report['recommendation']} -> {advice.get(report['recommendation'], '')}",
+        f"  recommendation: {report['recommendation']} -> {_advised_command(report, sampling or {})}",
     ]
     return "\n".join(lines)
 

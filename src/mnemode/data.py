@@ -48,6 +48,11 @@ class TrajectorySet:
         forcing_names: ``U`` forcing names.
         hidden: ``(T, B, H)`` hidden truth components (generated data only) or ``None``.
         meta: plain-data provenance (system, noise level, seed, ...).
+        start_times: ``(B,)`` true start time of each trajectory, or ``None``. When
+            set, ``times`` count from each trajectory's own start and sample ``n``
+            of trajectory ``b`` was taken at ``start_times[b] + times[n]``
+            (:meth:`absolute_times`). Sets loaded from files with trajectories
+            starting at different times carry them; generated sets do not.
     """
 
     times: np.ndarray
@@ -58,6 +63,7 @@ class TrajectorySet:
     forcing_names: tuple[str, ...] = ()
     hidden: np.ndarray | None = None
     meta: dict = field(default_factory=dict)
+    start_times: np.ndarray | None = None
 
     def __post_init__(self):
         self.times = np.asarray(self.times, dtype=np.float64)
@@ -67,6 +73,11 @@ class TrajectorySet:
         self.names = tuple(self.names)
         self.units = tuple(self.units) if self.units else ("",) * self.dim
         self.forcing_names = tuple(self.forcing_names)
+        if self.start_times is not None:
+            self.start_times = np.asarray(self.start_times, dtype=np.float64).reshape(-1)
+            if self.start_times.shape[0] != self.states.shape[1]:
+                raise DataError("trajectory set", f"{self.start_times.shape[0]} start times for "
+                                f"{self.states.shape[1]} trajectories", "give one start time per trajectory.")
 
     # -- shape -------------------------------------------------------------
     @property
@@ -97,6 +108,11 @@ class TrajectorySet:
     def duration(self) -> float:
         return float(self.times[-1] - self.times[0])
 
+    def absolute_times(self) -> np.ndarray:
+        """``(T, B)`` true sample times: ``times`` shifted by each trajectory's start time (if any)."""
+        t = np.repeat(self.times[:, None], self.n_trajectories, axis=1)
+        return t if self.start_times is None else t + self.start_times[None, :]
+
     # -- selection ---------------------------------------------------------
     def select(self, index: Sequence[int] | slice) -> "TrajectorySet":
         """A subset of trajectories (by position along the batch axis)."""
@@ -105,6 +121,7 @@ class TrajectorySet:
             forcing=None if self.forcing is None else self.forcing[:, index],
             hidden=None if self.hidden is None else self.hidden[:, index],
             meta=dict(self.meta),
+            start_times=None if self.start_times is None else self.start_times[index],
         )
 
     def time_slice(self, start: int, stop: int | None = None) -> "TrajectorySet":
@@ -157,6 +174,8 @@ class TrajectorySet:
                 arrays.update(forcing=self.forcing, forcing_names=np.array(self.forcing_names))
             if self.hidden is not None:
                 arrays.update(hidden=self.hidden)
+            if self.start_times is not None:
+                arrays.update(start_times=self.start_times)
             with atomic_path(path) as tmp:
                 with open(tmp, "wb") as fh:
                     np.savez(fh, **arrays)
@@ -167,9 +186,10 @@ class TrajectorySet:
                     fh.write("# units: " + ",".join([*self.units, *[""] * len(self.forcing_names)]) + "\n")
                     w = csv.writer(fh)
                     w.writerow(["trajectory", "time", *self.names, *self.forcing_names])
+                    absolute = self.absolute_times()
                     for b in range(self.n_trajectories):
                         for i in range(self.n_times):
-                            row = [b, repr(float(self.times[i]))]
+                            row = [b, repr(float(absolute[i, b]))]
                             row += [repr(float(v)) for v in self.states[i, b]]
                             if self.forcing is not None:
                                 row += [repr(float(v)) for v in self.forcing[i, b]]
@@ -231,6 +251,7 @@ def _load_npz(path: Path) -> TrajectorySet:
             fnames = tuple(str(s) for s in z["forcing_names"]) if "forcing_names" in keys else ()
             hidden = z["hidden"] if "hidden" in keys else None
             meta = json.loads(str(z["meta"])) if "meta" in keys else {}
+            starts = z["start_times"] if "start_times" in keys else None
     except DataError:
         raise
     except (zipfile.BadZipFile, EOFError, OSError, ValueError, KeyError) as exc:
@@ -248,7 +269,10 @@ def _load_npz(path: Path) -> TrajectorySet:
         if arr is not None and not (np.issubdtype(arr.dtype, np.number) or arr.dtype == np.bool_):
             raise DataError(str(path), f"array {label!r} holds {arr.dtype} values, not numbers",
                             f"store {label!r} as a float array.")
-    return TrajectorySet(times, states, names, units, forcing, fnames, hidden, meta)
+    if starts is not None and (starts.ndim != 1 or starts.shape[0] != states.shape[1]):
+        raise DataError(str(path), f"'start_times' has shape {starts.shape}; expected ({states.shape[1]},)",
+                        "give one start time per trajectory.")
+    return TrajectorySet(times, states, names, units, forcing, fnames, hidden, meta, starts)
 
 
 def _load_csv(path: Path, state_columns, forcing_columns) -> TrajectorySet:

@@ -7,8 +7,6 @@ hand and call the stage libraries directly.
 
 from __future__ import annotations
 
-import hashlib
-import json
 import logging
 import time
 from dataclasses import dataclass
@@ -18,22 +16,23 @@ import torch
 from hydra.utils import instantiate
 from omegaconf import DictConfig, OmegaConf
 
+from . import distributed
 from .closures.base import Closure, DiscreteRecurrent, Memory, Recurrent
-from .data import TrajectorySet, generate, load_trajectories
 from .errors import CheckpointError, ConfigError, MnemodeError
-from .fitting.checkpoint import checkpoint_step
 from .fitting.base import Fitter
+from .fitting.checkpoint import checkpoint_step
 from .fitting.context import FitContext
 from .hybrid import HybridField, HybridFlowMap
 from .metric_labels import metrics_labels, versions
-from . import distributed
 from .rundir import RunDir
 from .solvers import RK4, FlowMap, Solver
+from .sources import DataSplits, prepare_data, run_data, save_run_data
 from .systems.base import System
 
 __all__ = [
     "DataSplits", "compose_config", "make_system", "prepare_data", "main_model_name", "model_specs", "build_model",
-    "fit_models", "save_model", "load_model", "RunModel", "load_run_model", "fit_worker", "assess_run", "export_run", "run_pipeline",
+    "fit_models", "save_model", "load_model", "RunModel", "load_run_model", "fit_worker", "assess_run", "export_run",
+    "run_pipeline",
 ]
 
 log = logging.getLogger("mnemode")
@@ -65,6 +64,8 @@ def _instantiate(node, what: str, **kwargs):
         raise
     except Exception as exc:  # Hydra wraps import and argument errors
         cause = exc.__cause__ or exc
+        if isinstance(cause, MnemodeError):  # a target's own clear message, unwrapped
+            raise cause from None
         raise ConfigError(what, f"could not be built from {OmegaConf.to_container(node)} ({cause})",
                           "check the _target_ and its arguments in that config group.") from None
 
@@ -78,103 +79,6 @@ def make_system(cfg: DictConfig) -> System:
         raise ConfigError("system._target_", f"built a {type(system).__name__}, expected a mnemode System",
                           "point it at a mnemode.systems factory or mnemode.systems.custom_system.")
     return system
-
-
-@dataclass
-class DataSplits:
-    """Training, validation and test trajectories, and where they came from."""
-
-    train: TrajectorySet
-    val: TrajectorySet
-    test: TrajectorySet
-    source: str
-
-    @property
-    def dt(self) -> float:
-        return self.train.dt
-
-    @property
-    def n_forcing(self) -> int:
-        return 0 if self.train.forcing is None else int(self.train.forcing.shape[-1])
-
-
-def _data_key(cfg: DictConfig) -> str:
-    spec = {
-        "system": OmegaConf.to_container(cfg.system, resolve=True),
-        "data": {k: v for k, v in OmegaConf.to_container(cfg.data, resolve=True).items() if k != "cache_dir"},
-        "version": 1,
-    }
-    return hashlib.sha256(json.dumps(spec, sort_keys=True).encode()).hexdigest()[:12]
-
-
-def prepare_data(cfg: DictConfig, system: System, *, progress: bool = False) -> DataSplits:
-    """Generate (and cache) or load the trajectories, validate them and split them."""
-    d = cfg.data
-    if d.source == "generated":
-        cache = Path(str(d.cache_dir)).expanduser() / f"{system.name}-{_data_key(cfg)}"
-        fit_path, test_path = cache / "train_val.npz", cache / "test.npz"
-        if fit_path.exists() and test_path.exists():
-            log.info("using cached data %s", cache)
-        else:
-            log.info("generating %s data into %s", system.name, cache)
-            solver = RK4(float(d.solver_step))
-            fit_set = generate(system, n_trajectories=int(d.n_train) + int(d.n_val), duration=float(d.duration),
-                               dt=float(d.dt), solver=solver, seed=int(d.seed), noise=float(d.noise),
-                               spin_up=d.spin_up, progress=progress)
-            test = generate(system, n_trajectories=int(d.n_test), duration=float(d.test_duration),
-                            dt=float(d.dt), solver=solver, seed=int(d.seed) + 100_003, noise=float(d.noise),
-                            spin_up=d.spin_up, progress=progress)
-            fit_set.save(fit_path)
-            test.save(test_path)
-        # The first run works on the arrays as read back from the cache, like every later run: the same
-        # memory layout gives the same rounding, so runs with one seed repeat exactly.
-        fit_set = load_trajectories(fit_path, expected_dim=system.dim)
-        test = load_trajectories(test_path, expected_dim=system.dim)
-        train, val = fit_set.split_by_trajectory([int(d.n_train), int(d.n_val)])
-        return DataSplits(train, val, test, str(cache))
-    if d.source == "file":
-        if d.path in (None, "???"):
-            raise ConfigError("data.path", "is not set", "pass data.path=/path/to/observations.csv")
-        ts = load_trajectories(d.path, expected_dim=system.dim,
-                               state_columns=d.get("state_columns"), forcing_columns=d.get("forcing_columns"))
-        if d.split == "time":
-            train, val, test = ts.split_by_time(list(d.fractions))
-        elif d.split == "trajectory":
-            b = ts.n_trajectories
-            counts = [d.get("n_train"), d.get("n_val"), d.get("n_test")]
-            if any(c is None for c in counts):
-                if b < 3:
-                    raise ConfigError("data.split", f"is 'trajectory' but the file holds {b} trajectory(ies)",
-                                      "use data.split=time, or provide at least 3 trajectories.")
-                n_val = n_test = max(1, round(0.2 * b))
-                counts = [b - n_val - n_test, n_val, n_test]
-            train, val, test = ts.split_by_trajectory([int(c) for c in counts])
-        else:
-            raise ConfigError("data.split", f"is {d.split!r}; expected 'trajectory' or 'time'",
-                              "set data.split=trajectory or data.split=time.")
-        return DataSplits(train, val, test, str(d.path))
-    raise ConfigError("data.source", f"is {d.source!r}; expected 'generated' or 'file'",
-                      "choose data=generated or data=file.")
-
-
-_SPLITS = ("train", "val", "test")
-
-
-def save_run_data(run: RunDir, data: DataSplits) -> None:
-    """Keep the run's own copy of its data splits, so the run directory alone suffices later."""
-    for split in _SPLITS:
-        path = run.path / "data" / f"{split}.npz"
-        if not path.exists():
-            getattr(data, split).save(path)
-
-
-def run_data(run: RunDir, cfg: DictConfig, system: System) -> DataSplits:
-    """The data a run was fitted on: its own copy if present, else rebuilt from the config."""
-    paths = [run.path / "data" / f"{split}.npz" for split in _SPLITS]
-    if all(p.exists() for p in paths):
-        train, val, test = (load_trajectories(p, expected_dim=system.dim) for p in paths)
-        return DataSplits(train, val, test, str(run.path / "data"))
-    return prepare_data(cfg, system, progress=bool(cfg.progress))
 
 
 # -- models ------------------------------------------------------------------------

@@ -1,7 +1,9 @@
 """Does the missing term need memory? A regression test on the data, before any unroll.
 
 The residual ``ρ = ẋ̂ − f0(x)`` (finite-difference derivatives; ``ẋ̂`` without
-physics) is what a closure must supply. Two regressions on the same samples:
+physics) is what a closure must supply; when the sampling is too coarse for
+finite differences (:mod:`~mnemode.fitting.sampling_diagnostic`), the flow-map
+residual ``ρ_n = (x_{n+1} − Ψ0(x_n))/Δt`` takes its place (``targets='flow_map'``). Two regressions on the same samples:
 
 1. **memoryless** — the best function of the present state: random Fourier
    features of ``x̃`` with a ridge readout
@@ -45,7 +47,8 @@ from ..data import FD_SCHEMES, TrajectorySet
 from ..errors import DataError
 from .regression import relative_error, set_scaling
 from ..linalg import ridge_solve
-from .targets import derivative_targets
+from ..solvers import RK4, FlowMap
+from .targets import derivative_targets, flow_map_targets
 
 __all__ = ["memory_need", "leaky_averages"]
 
@@ -81,7 +84,8 @@ def _explained(pred: torch.Tensor, target: torch.Tensor) -> float:
 
 def memory_need(train: TrajectorySet, val: TrajectorySet | None, physics, *, scheme: str = "central4",
                 time_constants=None, n_filters: int = 6, threshold: float = 0.5, n_features: int = 300,
-                lengthscale=(1.0, 2.0, 4.0), ridge=(1e-8, 1e-6, 1e-4), seed: int = 0) -> dict:
+                lengthscale=(1.0, 2.0, 4.0), ridge=(1e-8, 1e-6, 1e-4), seed: int = 0,
+                targets: str = "derivative") -> dict:
     """How much of the residual the present state explains, and how much more its history adds.
 
     Args:
@@ -89,6 +93,8 @@ def memory_need(train: TrajectorySet, val: TrajectorySet | None, physics, *, sch
             trajectory is held out).
         physics: the nominal field ``f0(t, x[, u])``, or ``None`` (data-only).
         scheme: finite-difference scheme for ``ẋ̂``.
+        targets: ``'derivative'`` (finite differences) or ``'flow_map'``
+            (``(x_{n+1} − Ψ0(x_n))/Δt``, for coarse sampling).
         time_constants: ``(τ_min, τ_max)`` of the history filters; default
             ``(5 Δt, 500 Δt)`` capped at a tenth of the trajectory length.
         n_filters: filters per component.
@@ -102,7 +108,7 @@ def memory_need(train: TrajectorySet, val: TrajectorySet | None, physics, *, sch
         ``additional_explained``, ``remaining_explained`` (fractions, validation
         data), ``recommendation`` (``'memory'`` or ``'memoryless'``), ``threshold``,
         ``time_constants``, ``lengthscale``, ``ridge``, ``history_ridge``,
-        ``n_train`` and ``n_val`` (samples used).
+        ``n_train`` and ``n_val`` (samples used), ``targets``.
 
     Raises:
         DataError: trajectories too short for the filters' transient.
@@ -116,10 +122,19 @@ def memory_need(train: TrajectorySet, val: TrajectorySet | None, physics, *, sch
     taus = np.geomspace(float(time_constants[0]), float(time_constants[1]), int(n_filters))
     discard = int(round(2 * taus[-1] / dt))
 
+    if targets not in ("derivative", "flow_map"):
+        raise ValueError(f"targets {targets!r} is not 'derivative' or 'flow_map'")
+    flow = None if physics is None else FlowMap(physics, dt, RK4(dt / 10))
+
     def samples(ts: TrajectorySet, what: str):
-        inputs, rho = derivative_targets(ts, physics, scheme)
-        offsets = FD_SCHEMES[scheme][0]
-        index = np.arange(-min(offsets), ts.n_times - max(offsets))
+        if targets == "flow_map":
+            with torch.no_grad():
+                inputs, rho = flow_map_targets(ts, flow)
+            index = np.arange(ts.n_times - 1)
+        else:
+            inputs, rho = derivative_targets(ts, physics, scheme)
+            offsets = FD_SCHEMES[scheme][0]
+            index = np.arange(-min(offsets), ts.n_times - max(offsets))
         keep = index >= discard
         if not keep.any():
             raise DataError(what, f"trajectories of {ts.n_times} samples are shorter than the history filters' "
@@ -170,4 +185,5 @@ def memory_need(train: TrajectorySet, val: TrajectorySet | None, physics, *, sch
         "history_ridge": lam_h,
         "n_train": int(x_tr.shape[0]),
         "n_val": int(x_va.shape[0]),
+        "targets": targets,
     }

@@ -12,11 +12,16 @@ In a config::
 The nominal field must be an ``nn.Module`` called as ``f(t, x)`` or ``f(t, x, u)``
 (with forcing inputs ``u``) returning ``dx/dt`` with the shape of ``x``. Such a
 system has no truth generator: its data come from the user's file.
+
+The config builds the nominal field here (``_recursive_: false``), so that a
+module that does not import is reported with how to put it on the Python path.
 """
 
 from __future__ import annotations
 
-from typing import Sequence
+import importlib
+import os
+from typing import Any, Sequence
 
 from torch import nn
 
@@ -26,10 +31,49 @@ from .base import System
 __all__ = ["custom_system"]
 
 
+def _build_nominal(spec: Any) -> nn.Module:
+    """Instantiate a ``{_target_: module.Class, ...}`` node, naming the fix when the module does not import."""
+    from hydra.utils import instantiate
+    from omegaconf import DictConfig, OmegaConf
+
+    node = OmegaConf.create(spec) if isinstance(spec, dict) else spec
+    if not isinstance(node, DictConfig) or "_target_" not in node:
+        return spec
+    target = str(node._target_)
+    module_name, _, attr = target.rpartition(".")
+    if not module_name:
+        raise ConfigError("system.nominal._target_", f"is {target!r}, not a dotted path module.Class",
+                          "write it as my_module.MyModel.")
+    try:
+        module = importlib.import_module(module_name)
+    except ImportError as exc:
+        top = module_name.split(".")[0]
+        raise ConfigError("system.nominal._target_",
+                          f"{target!r}: the module {module_name!r} cannot be imported ({exc}); mnemode looks for it "
+                          f"on PYTHONPATH and among installed packages (running in {os.getcwd()})",
+                          f"put the folder that holds {top}.py (or the {top}/ package) on the path, e.g. "
+                          f"`PYTHONPATH=/path/to/that/folder mnemode run ...`, or install it with "
+                          f"`pip install -e /path/to/your/project`.") from None
+    if not hasattr(module, attr):
+        raise ConfigError("system.nominal._target_", f"{target!r}: module {module_name!r} "
+                          f"({getattr(module, '__file__', '?')}) has no {attr!r}",
+                          "check the class name (spelling, capitals).")
+    return instantiate(node)
+
+
 def custom_system(nominal: nn.Module, state_names: Sequence[str], state_units: Sequence[str] | None = None,
                   time_unit: str = "s", lyapunov_exponent: float | None = None, name: str = "custom",
                   ring: bool = False) -> System:
-    """A :class:`System` from a user's nominal field and the names of the observed components."""
+    """A :class:`System` from a user's nominal field and the names of the observed components.
+
+    Args:
+        nominal: the field, or its config node ``{_target_: module.Class, ...}``.
+
+    Raises:
+        ConfigError: the field's module does not import (the message says how to
+            put it on the path), or it is not an ``nn.Module``.
+    """
+    nominal = _build_nominal(nominal)
     if not isinstance(nominal, nn.Module):
         raise ConfigError("system.nominal", f"is a {type(nominal).__name__}, expected an nn.Module vector field",
                           "point system.nominal._target_ at an nn.Module class whose forward(t, x[, u]) "
