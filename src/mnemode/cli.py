@@ -54,6 +54,15 @@ def _fail(exc: MnemodeError) -> None:
     sys.exit(exc.exit_code)
 
 
+def _log_to_file(exc: MnemodeError) -> None:
+    """Put the error in the run's log file only: the console gets it once, from :func:`_fail`."""
+    record = log.makeRecord(log.name, logging.ERROR, __file__, 0, "%s", (exc,), None)
+    for logger in (log, logging.getLogger()):
+        for handler in logger.handlers:
+            if isinstance(handler, logging.FileHandler):
+                handler.handle(record)
+
+
 def main(argv: list[str] | None = None) -> None:
     argv = list(sys.argv[1:] if argv is None else argv)
     if not argv or argv[0] in ("-h", "--help", "help"):
@@ -101,9 +110,12 @@ def _hydra(command: str, rest: list[str]) -> None:
             run_dir = Path(HydraConfig.get().runtime.output_dir)
             _dispatch(command, cfg, run_dir)
         except MnemodeError as exc:
-            log.error("%s", exc)
+            _log_to_file(exc)
             _fail(exc)
 
+    from .config_check import precheck_overrides
+
+    precheck_overrides(command, rest)  # settings and run directory, before Hydra creates anything
     saved = sys.argv
     sys.argv = [f"mnemode {command}", *rest]
     try:
@@ -184,7 +196,10 @@ def _run_dir_arg(parser: argparse.ArgumentParser, rest: list[str]):
     path = Path(args.run_dir)
     if not path.is_dir():
         raise MnemodeError(str(path), "is not a directory", "pass a run directory printed by `mnemode run` or `mnemode fit`.")
-    return args, RunDir(path)
+    run = RunDir(path)
+    if not run.config_path.exists():  # checked before the writer lock, which would add a file
+        run.load_config()
+    return args, run
 
 
 def _assess(rest: list[str]) -> None:
@@ -193,7 +208,8 @@ def _assess(rest: list[str]) -> None:
     parser = argparse.ArgumentParser(prog="mnemode assess", description="Re-assess a run's fitted models.")
     parser.add_argument("run_dir")
     args, run = _run_dir_arg(parser, rest)
-    pipeline.assess_run(run)
+    with run.lock("assess"):
+        pipeline.assess_run(run)
     _print_summary(run)
 
 
@@ -206,7 +222,8 @@ def _export(rest: list[str]) -> None:
     parser.add_argument("--onnx", action="store_true", default=None, help="also write simulator.onnx")
     parser.add_argument("--overwrite", action="store_true", help="replace an existing export of this run")
     args, run = _run_dir_arg(parser, rest)
-    manifest = pipeline.export_run(run, model_name=args.model, onnx=args.onnx, overwrite=args.overwrite)
+    with run.lock("export"):
+        manifest = pipeline.export_run(run, model_name=args.model, onnx=args.onnx, overwrite=args.overwrite)
     print(f"exported {manifest.get('model_name', '')} to {run.export_dir}")
     parity = manifest.get("parity", {})
     if parity:
@@ -222,6 +239,8 @@ def _resume(rest: list[str]) -> None:
     parser = argparse.ArgumentParser(prog="mnemode resume",
                                      description="Continue an interrupted run, or the unfinished jobs of a sweep.")
     parser.add_argument("run_dir")
+    parser.add_argument("overrides", nargs="*", metavar="key=value",
+                        help="settings that leave the fit unchanged: assess.*, export.*, fit.lr, progress")
     args = parser.parse_args(rest)
     path = Path(args.run_dir)
     runs = [RunDir(path)] if (path / "config.yaml").exists() else sorted(
@@ -236,8 +255,33 @@ def _resume(rest: list[str]) -> None:
         cfg = run.load_config()
         stages = tuple(run.status().get("stages_requested", ("fit", "assess", "export")))
         print(f"resuming {run.path}")
-        pipeline.run_pipeline(cfg, run.path, resume=True, stages=stages)
+        with run.lock("resume"):
+            cfg = _resume_config(run, cfg, args.overrides)
+            pipeline.run_pipeline(cfg, run.path, resume=True, stages=stages)
         _print_summary(run)
+
+
+def _resume_config(run, cfg, overrides: list[str]):
+    """The stored config with a resume's accepted overrides, written back and recorded in the history."""
+    from omegaconf import OmegaConf
+
+    from .config_check import apply_overrides, resume_overrides
+    from .fileio import write_text
+
+    if not overrides:
+        return cfg
+    changes = resume_overrides(overrides, cfg)
+    new = apply_overrides(cfg, changes)
+    old = {k: OmegaConf.select(cfg, k) for k in changes}
+    write_text(run.config_path, OmegaConf.to_yaml(new, resolve=True))
+    run.record("resume overrides", changes={k: {"from": _plain(old[k]), "to": _plain(v)} for k, v in changes.items()})
+    return new
+
+
+def _plain(v):
+    from omegaconf import OmegaConf
+
+    return OmegaConf.to_container(v) if OmegaConf.is_config(v) else v
 
 
 def _rollout(rest: list[str]) -> None:

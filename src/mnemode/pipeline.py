@@ -269,8 +269,12 @@ def load_model(run: RunDir, name: str, cfg: DictConfig, system: System, dt: floa
     """Rebuild model ``name`` from the run's config, then load its tensors."""
     path = run.model_path(name)
     if not path.exists():
-        raise CheckpointError(str(path), f"fitted model {name!r} is missing",
-                              f"fit it first (`mnemode resume {run.path}` finishes an interrupted run).")
+        if run.stage_done(f"fit:{name}"):  # fitted once, then deleted or moved: a resume would skip it
+            raise CheckpointError(str(path), f"fitted model {name!r} was deleted or moved after the run "
+                                  "fitted it", f"restore {path.name} into {path.parent} from a backup, or refit "
+                                  f"in a new run with the settings in {run.config_path}.")
+        raise CheckpointError(str(path), f"fitted model {name!r} is missing: the run stopped before fitting it",
+                              f"finish the fit with `mnemode resume {run.path}`.")
     try:
         payload = torch.load(path, weights_only=True, map_location="cpu")
     except Exception as exc:
@@ -444,8 +448,11 @@ def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | Non
 def run_pipeline(cfg: DictConfig, run_dir: str | Path, *, resume: bool = False, stages=("fit", "assess", "export"),
                  only: list[str] | None = None) -> RunDir:
     """The main job: data, fit, assess, export, in one run directory."""
+    from .config_check import check_config
+
+    check_config(cfg)  # every stage's settings, before anything is written or computed
     run = RunDir(run_dir)
-    run.start(cfg, resume=resume)
+    run.start(cfg, resume=resume, command="resume" if resume else "+".join(stages))
     if not resume:
         run.mark("data", "pending", stages_requested=list(stages))
     try:
