@@ -22,7 +22,8 @@ from omegaconf import DictConfig, OmegaConf
 
 from .errors import ConfigError
 
-__all__ = ["check_config", "resume_overrides", "RESUME_SAFE", "apply_overrides", "precheck_overrides"]
+__all__ = ["check_config", "resume_overrides", "RESUME_SAFE", "apply_overrides", "precheck_overrides",
+           "check_physics_on_data"]
 
 _ABSENT = object()
 RESUME_SAFE = ("assess.", "export.", "fit.lr", "progress")
@@ -377,3 +378,79 @@ def precheck_overrides(command: str, args: list[str]) -> None:
         raise CheckpointError(str(target), f"cannot be created: {anchor} is "
                               f"{'not a folder' if not anchor.is_dir() else 'not writable'}",
                               "choose a writable place with hydra.run.dir=... or MNEMODE_RUNS=....")
+
+
+# -- the physics against the data, before any fitting -----------------------------------------
+
+_SCALE_LIMIT = 1e4  # |f0(x)| this many times the data's own rate of change: units or scaling disagree
+_PROBE_SAMPLES = 512
+
+
+def check_physics_on_data(system, train) -> None:
+    """Evaluate the nominal physics at the training states before any fitting.
+
+    Three things are caught here rather than deep inside a fit: a field that
+    fails or returns another shape than ``x`` (a user's physics module), one
+    that is not finite at the data's states, and data whose scale disagrees
+    with the physics -- ``rms f0(x)`` more than 10⁴ times the data's own
+    ``rms Δx/Δt`` (data in other units, e.g. scaled by 10⁶), which no learning
+    rate can fix.
+
+    Raises:
+        ConfigError: the physics module fails or returns the wrong shape.
+        DataError: non-finite physics, or a scale mismatch, at the data's states.
+    """
+    import numpy as np
+    import torch
+
+    from .errors import DataError
+
+    nominal = getattr(system, "nominal", None)
+    if nominal is None:
+        return
+    states = np.asarray(train.states, dtype=np.float64)            # (T, B, D)
+    T, B, D = states.shape
+    flat = states.reshape(T * B, D)
+    idx = np.linspace(0, T * B - 1, min(T * B, _PROBE_SAMPLES)).astype(int)
+    x = torch.as_tensor(flat[idx])
+    u = None
+    if getattr(train, "forcing", None) is not None:
+        forcing = np.asarray(train.forcing, dtype=np.float64)
+        u = torch.as_tensor(forcing.reshape(T * B, forcing.shape[-1])[idx])
+    name = f"{type(nominal).__module__}.{type(nominal).__name__}"
+    try:
+        dtype = next(iter(nominal.buffers()), next(iter(nominal.parameters()), None))
+        x = x.to(dtype.dtype) if dtype is not None and dtype.is_floating_point else x
+        if u is not None:
+            u = u.to(x.dtype)
+        with torch.no_grad():
+            out = nominal(torch.zeros((), dtype=x.dtype), x, u) if u is not None else nominal(
+                torch.zeros((), dtype=x.dtype), x)
+    except Exception as exc:
+        raise ConfigError(f"system.nominal ({name})", f"fails on the data's states of shape {tuple(x.shape)} "
+                          f"({type(exc).__name__}: {str(exc).splitlines()[0][:200] if str(exc) else ''})",
+                          "make forward(t, x[, u]) accept a batch of states (..., dim) and return dx/dt "
+                          "of the same shape.") from None
+    if not isinstance(out, torch.Tensor) or tuple(out.shape) != tuple(x.shape):
+        got = tuple(out.shape) if isinstance(out, torch.Tensor) else type(out).__name__
+        raise ConfigError(f"system.nominal ({name})", f"returned {got} for states of shape {tuple(x.shape)}; "
+                          "expected dx/dt with the shape of x",
+                          "return a tensor shaped like x, e.g. torch.stack([dX, dY, dZ], dim=-1).")
+    f0 = out.detach().double().numpy()
+    where = "data vs system.nominal"
+    if not np.isfinite(f0).all():
+        raise DataError(where, f"the physics {name} gives non-finite dx/dt at the data's states (largest |x| "
+                        f"is {float(np.abs(flat).max()):.3g})",
+                        "check that the data's units and scaling are those the physics expects.")
+    dt = float(getattr(train, "dt", 0.0) or 0.0)
+    if T < 2 or dt <= 0:
+        return
+    rate = np.diff(states, axis=0) / dt
+    rate_rms = float(np.sqrt(np.mean(rate[np.isfinite(rate)] ** 2))) if np.isfinite(rate).any() else 0.0
+    f0_rms = float(np.sqrt(np.mean(f0 ** 2)))
+    if rate_rms > 0 and f0_rms > _SCALE_LIMIT * rate_rms:
+        raise DataError(where, f"the physics {name} predicts dx/dt of typical size {f0_rms:.3g} at the data's "
+                        f"states, but the data change at {rate_rms:.3g} per time unit, a factor {f0_rms / rate_rms:.2g} "
+                        "apart: the data's units or scaling do not match the physics, and no learning rate fixes that",
+                        "convert the data to the physics' units (or rescale the physics), and check data.dt's "
+                        "time unit.")

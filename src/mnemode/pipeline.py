@@ -62,6 +62,8 @@ def _instantiate(node, what: str, **kwargs):
         raise
     except Exception as exc:  # Hydra wraps import and argument errors
         cause = exc.__cause__ or exc
+        if isinstance(cause, MnemodeError):  # a constructor's own clear message
+            raise cause from None
         raise ConfigError(what, f"could not be built from {OmegaConf.to_container(node)} ({cause})",
                           "check the _target_ and its arguments in that config group.") from None
 
@@ -448,7 +450,7 @@ def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | Non
 def run_pipeline(cfg: DictConfig, run_dir: str | Path, *, resume: bool = False, stages=("fit", "assess", "export"),
                  only: list[str] | None = None) -> RunDir:
     """The main job: data, fit, assess, export, in one run directory."""
-    from .config_check import check_config
+    from .config_check import check_config, check_physics_on_data
 
     check_config(cfg)  # every stage's settings, before anything is written or computed
     run = RunDir(run_dir)
@@ -466,6 +468,7 @@ def run_pipeline(cfg: DictConfig, run_dir: str | Path, *, resume: bool = False, 
         })
         run.mark("data")
         if "fit" in stages:
+            check_physics_on_data(system, data.train)  # shape, finiteness and units, before any fitting
             fit_models(cfg, run, system, data, resume=resume, only=only)
         if "assess" in stages and cfg.assess.enabled and not (resume and run.stage_done("assess")):
             assess_run(run, cfg, system, data)
