@@ -197,7 +197,7 @@ def _run_dir_arg(parser: argparse.ArgumentParser, rest: list[str]):
     if not path.is_dir():
         raise MnemodeError(str(path), "is not a directory", "pass a run directory printed by `mnemode run` or `mnemode fit`.")
     run = RunDir(path)
-    if not run.config_path.exists():  # checked before the writer lock, which would add a file
+    if not run.is_run():  # checked before the writer lock, which would add a file
         run.load_config()
     return args, run
 
@@ -243,8 +243,8 @@ def _resume(rest: list[str]) -> None:
                         help="settings that leave the fit unchanged: assess.*, export.*, fit.lr, progress")
     args = parser.parse_args(rest)
     path = Path(args.run_dir)
-    runs = [RunDir(path)] if (path / "config.yaml").exists() else sorted(
-        (RunDir(p.parent) for p in path.glob("*/config.yaml")), key=lambda r: str(r.path))
+    runs = [RunDir(path)] if RunDir(path).is_run() else sorted(
+        (r for r in (RunDir(p.parent) for p in path.glob("*/config.yaml")) if r.is_run()), key=lambda r: str(r.path))
     if not runs:
         raise MnemodeError(str(path), "holds no mnemode run (no config.yaml here or one level below)",
                            "pass a run directory or a sweep directory.")

@@ -85,30 +85,36 @@ def _is_mnemode(target: str) -> bool:
 
 
 def _locate(target: str, where: str):
-    """Import the object a dotted path names, the way Hydra does (longest importable module, then attributes)."""
+    """The object a dotted path names, found as Hydra finds it: import the first part, then take
+    attributes, importing a submodule only where no attribute of that name exists."""
     parts = target.split(".")
     if not all(p.isidentifier() for p in parts):
         raise UnsafeConfig(where, f"names {target!r}, which is not a dotted Python path",
                            "restore the run's config.yaml as mnemode wrote it.")
-    obj = None
-    for i in range(len(parts), 0, -1):
+
+    def load(name):
         try:
-            obj = importlib.import_module(".".join(parts[:i]))
+            return importlib.import_module(name)
         except ImportError:
-            continue
+            return None
         except Exception as exc:  # the module exists but fails while importing
-            raise UnsafeConfig(where, f"names {target!r}, whose module fails to import "
+            raise UnsafeConfig(where, f"names {target!r}, whose module {name} fails to import "
                                f"({type(exc).__name__}: {exc})", "fix or reinstall that module.") from None
-        for attr in parts[i:]:
-            try:
-                obj = getattr(obj, attr)
-            except AttributeError:
-                raise UnsafeConfig(where, f"names {target!r}, which does not exist",
-                                   "restore the run's config.yaml, or install the module the run was "
-                                   "created with.") from None
-        return obj
-    raise UnsafeConfig(where, f"names {target!r}, which cannot be imported",
-                       "install the module the run was created with (PYTHONPATH or pip install).")
+
+    obj = load(parts[0])
+    if obj is None:
+        raise UnsafeConfig(where, f"names {target!r}, which cannot be imported",
+                           "install the module the run was created with (PYTHONPATH or pip install).")
+    for i, part in enumerate(parts[1:], start=1):
+        if hasattr(obj, part):
+            obj = getattr(obj, part)
+            continue
+        sub = load(".".join(parts[: i + 1])) if inspect.ismodule(obj) else None
+        if sub is None:
+            raise UnsafeConfig(where, f"names {target!r}, which does not exist",
+                               "restore the run's config.yaml, or install the module the run was created with.")
+        obj = sub
+    return obj
 
 
 def check_target(target: Any, where: str, allowed_user: Iterable[str] = ()) -> None:

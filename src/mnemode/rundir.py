@@ -49,6 +49,8 @@ _HARMLESS = frozenset({"mnemode.log", LOCK_FILE, PROVENANCE_FILE})
 # mnemode's own files of a run that failed before fitting: replaced by a retry
 _RECLAIMABLE = ("config.yaml", "status.json", PROVENANCE_FILE, "metrics.json", "data/train.npz",
                 "data/val.npz", "data/test.npz")
+# top-level settings every stored config has
+_REQUIRED_KEYS = ("system", "data", "model", "solver", "fit", "assess", "export", "seed", "warm_up")
 # locks this process holds: path -> [file descriptor, depth]; re-entrant within a process
 _HELD: dict[str, list] = {}
 
@@ -95,8 +97,12 @@ class RunDir:
         return self.path / PROVENANCE_FILE
 
     def is_run(self) -> bool:
-        """Whether the directory holds a mnemode run (its config or status record)."""
-        return self.config_path.exists() or self.status_path.exists()
+        """Whether the directory holds a mnemode run: its status record, or a config beside its provenance.
+
+        (A start writes ``provenance.json``, then ``config.yaml``, then ``status.json``;
+        a user's own ``config.yaml`` alone does not make a folder a run.)
+        """
+        return self.status_path.exists() or (self.config_path.exists() and self.provenance_path.exists())
 
     # -- protection ------------------------------------------------------------
     def check_claimable(self) -> None:
@@ -241,8 +247,8 @@ class RunDir:
                 run to resume.
             RunLocked: another process is writing into the directory.
         """
-        if resume and not self.config_path.exists():
-            raise CheckpointError(str(self.path), "has no config.yaml, so there is no run to resume",
+        if resume and not (self.config_path.exists() and self.is_run()):
+            raise CheckpointError(str(self.path), "has no mnemode run (config.yaml and status.json) to resume",
                                   "check the path; resume takes the directory a run printed when it started.")
         if not resume:
             self.check_claimable()
@@ -298,9 +304,10 @@ class RunDir:
 
         from .config_safety import check_stored_config
 
-        if not self.config_path.exists():
-            raise CheckpointError(str(self.path), "has no config.yaml; it is not a mnemode run directory",
-                                  "pass the directory a `mnemode fit` or `mnemode run` printed.")
+        if not self.config_path.exists() or not self.is_run():
+            raise CheckpointError(str(self.path), "has no mnemode run (config.yaml beside status.json); it is not "
+                                  "a mnemode run directory", "pass the directory a `mnemode fit` or `mnemode run` "
+                                  "printed.")
         try:
             text = self.config_path.read_text(encoding="utf-8")
             tree = yaml.load(text, Loader=_yaml_loader())  # a SafeLoader: builds plain data only
@@ -310,6 +317,10 @@ class RunDir:
                               "restore the file; it is written by mnemode and should not be edited.") from None
         allowed = self.provenance().get("user_targets") or []
         check_stored_config(tree, self.config_path, [t for t in allowed if isinstance(t, str)])
+        missing = [k for k in _REQUIRED_KEYS if k not in tree]
+        if missing:
+            raise ConfigError(str(self.config_path), f"lacks the settings {missing}",
+                              "restore the file; it is written by mnemode and should not be edited.")
         try:
             return OmegaConf.create(tree)
         except Exception as exc:
