@@ -129,6 +129,8 @@ def check_target(target: Any, where: str, allowed_user: Iterable[str] = ()) -> N
            "from your own config.")
     if not isinstance(target, str) or not target:
         raise UnsafeConfig(where, f"is {target!r}; expected a dotted class path", fix)
+    if not all(p.isidentifier() for p in target.split(".")):
+        raise UnsafeConfig(where, f"names {target!r}, which is not a dotted Python path", fix)
     if _is_mnemode(target):
         obj = _locate(target, where)
         module = getattr(obj, "__module__", "") or ""
