@@ -262,3 +262,62 @@ def test_subprocess_shows_one_message_and_no_traceback(tmp_path, args, must):
     assert r.returncode == 2, r.stderr
     _assert_clean_message(r.stderr, must)
     assert not (tmp_path / "runs").exists()
+
+
+# -- physics against data: user modules and units ---------------------------------------------------
+
+@pytest.fixture
+def data_file(sandbox, tiny_data):
+    """The tiny preset's trajectories as a user's file (three trajectories: train, validation, test)."""
+    import dataclasses
+
+    import numpy as np
+
+    _, data = tiny_data
+    ts = data.train
+    states = np.concatenate([data.train.states, data.val.states, data.test.states], axis=1)
+    both = dataclasses.replace(ts, states=states, hidden=None)
+    both.save(sandbox / "obs.npz")
+    dataclasses.replace(both, states=states * 1e6).save(sandbox / "obs_micro.npz")
+    return sandbox
+
+
+@pytest.fixture
+def user_physics(sandbox, monkeypatch):
+    """A user's physics package whose field returns the wrong shape."""
+    import sys as _sys
+
+    (sandbox / "badphys_pkg.py").write_text(
+        "import torch\n"
+        "class Summed(torch.nn.Module):\n"
+        "    def forward(self, t, x):\n"
+        "        return x.sum(-1)          # drops the component axis\n")
+    monkeypatch.syspath_prepend(str(sandbox))
+    yield "badphys_pkg"
+    _sys.modules.pop("badphys_pkg", None)
+
+
+FILE_RUN = ["baselines=none", "progress=false", "data=file", "data.split=trajectory",
+            "data.n_train=1", "data.n_val=1", "data.n_test=1", "warm_up=1", "fit.val_horizon=1",
+            "fit.horizon=[0.1,0.2]", "assess.horizon=1"]
+
+
+def test_user_physics_of_the_wrong_shape_is_a_message(data_file, user_physics, capsys):
+    before = _hashes(data_file)
+    code, err = _call(["fit", *FILE_RUN, "data.path=obs.npz", "system=custom",
+                       f"system.nominal._target_={user_physics}.Summed", "system.state_names=[X,Y,Z]",
+                       "hydra.run.dir=userrun"], capsys)
+    assert code == 2, err
+    _assert_clean_message(err, f"{user_physics}.Summed")
+    assert "returned (2,)" in err and "shape of x" in err
+    _unchanged(before, _hashes(data_file))
+
+
+def test_data_in_other_units_is_not_blamed_on_the_learning_rate(data_file, capsys):
+    before = _hashes(data_file)
+    code, err = _call(["fit", *FILE_RUN, "data.path=obs_micro.npz", "hydra.run.dir=microrun"], capsys)
+    assert code == 2, err
+    _assert_clean_message(err, "units or scaling")
+    assert "fit.lr" not in err
+    assert not (data_file / "microrun" / "models").exists(), "refused before any fitting"
+    _unchanged(before, _hashes(data_file))

@@ -250,7 +250,9 @@ def _resume(rest: list[str]) -> None:
                            "pass a run directory or a sweep directory.")
     for run in runs:
         if run.status().get("state") == "finished":
-            print(f"{run.path}: finished, skipped")
+            note = " (the overrides were not applied: a finished run has nothing left to resume)" \
+                if args.overrides else ""
+            print(f"{run.path}: finished, skipped{note}")
             continue
         cfg = run.load_config()
         stages = tuple(run.status().get("stages_requested", ("fit", "assess", "export")))

@@ -147,8 +147,11 @@ def _plain(v):
     return OmegaConf.to_container(v) if OmegaConf.is_config(v) else v
 
 
-def check_config(cfg: DictConfig, *, build_fitters: bool = True) -> None:
+def check_config(cfg: DictConfig, *, build_fitters: bool = True, data_only: bool = False) -> None:
     """Check every setting of a run before any work is done.
+
+    With ``data_only`` (``mnemode generate`` and ``diagnose``) only the run-wide and
+    data settings are checked: models, fits, assessment and export are not used.
 
     Raises:
         ConfigError: naming the first setting at fault, what was expected and the fix.
@@ -189,7 +192,7 @@ def check_config(cfg: DictConfig, *, build_fitters: bool = True) -> None:
             if dt is not None and length is not None and length < 2 * dt:
                 raise ConfigError(key, f"is {length:g}, shorter than two samples at data.dt={dt:g}",
                                   f"lengthen {key} or shorten data.dt.")
-        if warm_up is not None and duration is not None and warm_up >= duration:
+        if not data_only and warm_up is not None and duration is not None and warm_up >= duration:
             raise ConfigError("warm_up", f"is {warm_up:g} time units but the trajectories last {duration:g} "
                               "(data.duration): nothing is left to forecast",
                               "shorten warm_up or lengthen data.duration.")
@@ -208,6 +211,9 @@ def check_config(cfg: DictConfig, *, build_fitters: bool = True) -> None:
                     or sum(fr) > 1 + _TOL):
                 raise ConfigError("data.fractions", f"is {fr!r}; expected three positive fractions summing to ≤ 1",
                                   "write e.g. data.fractions=[0.6,0.2,0.2].")
+
+    if data_only:
+        return
 
     # -- models: the main one and the baselines ----------------------------------------
     specs = {"fit": "fit"}
@@ -358,7 +364,7 @@ def precheck_overrides(command: str, args: list[str]) -> None:
         raise ConfigError("command line", f"the overrides {overrides} cannot be applied ({text[:300]})",
                           f"check the names against `mnemode {command} --cfg job`; a new key needs a leading "
                           "+ (e.g. +my_key=1).") from None
-    check_config(cfg)
+    check_config(cfg, data_only=command not in ("run", "fit"))
     if command not in ("run", "fit"):
         return
     run_dir = next((a.split("=", 1)[1] for a in args if a.startswith("hydra.run.dir=")), None)
