@@ -321,3 +321,13 @@ def test_data_in_other_units_is_not_blamed_on_the_learning_rate(data_file, capsy
     assert "fit.lr" not in err
     assert not (data_file / "microrun" / "models").exists(), "refused before any fitting"
     _unchanged(before, _hashes(data_file))
+
+
+@pytest.mark.parametrize("preset", sorted(p.stem for p in (Path(__file__).resolve().parents[1] / "configs"
+                                                            / "experiment").glob("*.yaml")))
+def test_every_preset_passes_the_whole_config_check(preset):
+    # the check must refuse bad values only: every shipped preset is a valid run
+    from mnemode.config_check import check_config
+    from mnemode.pipeline import compose_config
+
+    check_config(compose_config([f"experiment={preset}"]))

@@ -417,12 +417,16 @@ def check_physics_on_data(system, train) -> None:
     states = np.asarray(train.states, dtype=np.float64)            # (T, B, D)
     T, B, D = states.shape
     flat = states.reshape(T * B, D)
-    idx = np.linspace(0, T * B - 1, min(T * B, _PROBE_SAMPLES)).astype(int)
-    x = torch.as_tensor(flat[idx])
-    u = None
+    forcing = None
     if getattr(train, "forcing", None) is not None:
-        forcing = np.asarray(train.forcing, dtype=np.float64)
-        u = torch.as_tensor(forcing.reshape(T * B, forcing.shape[-1])[idx])
+        forcing = np.asarray(train.forcing, dtype=np.float64).reshape(T * B, -1)
+    finite = np.isfinite(flat).all(axis=1) & (np.isfinite(forcing).all(axis=1) if forcing is not None else True)
+    rows = np.flatnonzero(finite)  # gaps (if any) are the data check's business, not the physics'
+    if rows.size == 0:
+        return
+    idx = rows[np.linspace(0, rows.size - 1, min(rows.size, _PROBE_SAMPLES)).astype(int)]
+    x = torch.as_tensor(flat[idx])
+    u = None if forcing is None else torch.as_tensor(forcing[idx])
     name = f"{type(nominal).__module__}.{type(nominal).__name__}"
     try:
         dtype = next(iter(nominal.buffers()), next(iter(nominal.parameters()), None))
@@ -446,7 +450,7 @@ def check_physics_on_data(system, train) -> None:
     where = "data vs system.nominal"
     if not np.isfinite(f0).all():
         raise DataError(where, f"the physics {name} gives non-finite dx/dt at the data's states (largest |x| "
-                        f"is {float(np.abs(flat).max()):.3g})",
+                        f"is {float(np.abs(flat[rows]).max()):.3g})",
                         "check that the data's units and scaling are those the physics expects.")
     dt = float(getattr(train, "dt", 0.0) or 0.0)
     if T < 2 or dt <= 0:
