@@ -229,6 +229,18 @@ def test_missing_data_file_leaves_a_retryable_run_directory(sandbox, capsys):
     assert code == 2 and "missing.csv" in err and "already holds a run" not in err
 
 
+def test_bad_stored_setting_names_the_resume_that_fixes_it(sandbox, tiny_data, capsys):
+    run = _made_run(sandbox / "run", tiny_data)
+    text = run.config_path.read_text()
+    assert "gamma: 0.5" in text
+    run.config_path.write_text(text.replace("gamma: 0.5", "gamma: 0.0"))
+    before = _hashes(sandbox)
+    code, err = _call(["resume", str(run.path)], capsys)
+    assert code == 2, err
+    _assert_clean_message(err, f"mnemode resume {run.path} assess.gamma=")
+    _unchanged(before, _hashes(sandbox))
+
+
 def test_resume_override_is_accepted_and_recorded(sandbox, tiny_data):
     from omegaconf import OmegaConf
 

@@ -271,6 +271,7 @@ def _resume_config(run, cfg, overrides: list[str]):
     from .fileio import write_text
 
     if not overrides:
+        _check_stored(run, cfg)
         return cfg
     changes = resume_overrides(overrides, cfg)
     new = apply_overrides(cfg, changes)
@@ -278,6 +279,21 @@ def _resume_config(run, cfg, overrides: list[str]):
     write_text(run.config_path, OmegaConf.to_yaml(new, resolve=True))
     run.record("resume overrides", changes={k: {"from": _plain(old[k]), "to": _plain(v)} for k, v in changes.items()})
     return new
+
+
+def _check_stored(run, cfg) -> None:
+    """Check a stored config before resuming; a bad resumable setting is answered with the resume that fixes it."""
+    from .config_check import RESUME_SAFE, check_config
+    from .errors import ConfigError
+
+    try:
+        check_config(cfg)
+    except ConfigError as exc:
+        if any(exc.what == p.rstrip(".") or (p.endswith(".") and exc.what.startswith(p)) for p in RESUME_SAFE):
+            raise ConfigError(exc.what, f"{exc.problem} (in the run's stored config)",
+                              f"{exc.fix or ''} Give the new value to the resume, e.g. "
+                              f"`mnemode resume {run.path} {exc.what}=...`.".strip()) from None
+        raise
 
 
 def _plain(v):
