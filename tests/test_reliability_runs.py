@@ -178,3 +178,17 @@ def test_unwritable_run_directory_is_a_message(tmp_path):
     blocker.write_text("x")
     with pytest.raises(CheckpointError, match="cannot be created"):
         RunDir(blocker / "run").start(compose_config(["experiment=tiny"]), resume=False)
+
+
+def test_python_api_assess_is_refused_while_another_process_writes(tmp_path, run):
+    from mnemode import pipeline
+
+    holder = _hold(tmp_path, run.path)
+    try:
+        with pytest.raises(RunLocked, match=f"PID {holder.pid}"):
+            pipeline.assess_run(run)
+        with pytest.raises(RunLocked, match=f"PID {holder.pid}"):
+            pipeline.export_run(run)
+    finally:
+        holder.kill()
+        holder.wait(timeout=30)

@@ -24,7 +24,7 @@ from .errors import CheckpointError, ConfigError, MnemodeError
 from .fitting.checkpoint import checkpoint_step
 from .fitting.context import FitContext
 from .hybrid import HybridField, HybridFlowMap
-from .rundir import RunDir
+from .rundir import RunDir, holds_lock
 from .solvers import RK4, FlowMap, Solver
 from .systems.base import System
 
@@ -360,6 +360,7 @@ def _fmt(v) -> str:
     return f"{v:.4g}" if isinstance(v, (int, float)) else str(v)
 
 
+@holds_lock("assess")  # one writer per run directory, from Python as from the command line
 def assess_run(run: RunDir, cfg: DictConfig | None = None, system: System | None = None,
                data: DataSplits | None = None) -> dict:
     """Assess every fitted model of a run on its test set; writes metrics, figures, report."""
@@ -405,6 +406,7 @@ def _flat_metrics(result: dict) -> dict:
     }
 
 
+@holds_lock("export")  # one writer per run directory, from Python as from the command line
 def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | None = None,
                onnx: bool | None = None, system: System | None = None, data: DataSplits | None = None,
                overwrite: bool = False) -> dict:

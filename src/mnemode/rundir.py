@@ -37,7 +37,7 @@ from omegaconf import DictConfig, OmegaConf
 from .errors import CheckpointError, ConfigError, RunLocked
 from .fileio import new_file_mode, write_json, write_text
 
-__all__ = ["RunDir", "LOCK_FILE", "PROVENANCE_FILE"]
+__all__ = ["RunDir", "LOCK_FILE", "PROVENANCE_FILE", "holds_lock"]
 
 log = logging.getLogger("mnemode")
 
@@ -378,6 +378,19 @@ class RunDir:
         m.update(sections)
         write_json(self.metrics_path, m)
         return m
+
+
+def holds_lock(command: str):
+    """Decorator: run a function whose first argument is a :class:`RunDir` under that run's writer lock."""
+    import functools
+
+    def wrap(fn):
+        @functools.wraps(fn)
+        def locked(run, *args, **kwargs):
+            with run.lock(command):
+                return fn(run, *args, **kwargs)
+        return locked
+    return wrap
 
 
 def _yaml_loader():
