@@ -40,6 +40,15 @@ def _handlers() -> dict:
     return table
 
 
+def _log_to_file(exc: MnemodeError) -> None:
+    """Put the error in the run's log file only: the console gets it once, from :func:`_fail`."""
+    record = log.makeRecord(log.name, logging.ERROR, __file__, 0, "%s", (exc,), None)
+    for logger in (log, logging.getLogger()):
+        for handler in logger.handlers:
+            if isinstance(handler, logging.FileHandler):
+                handler.handle(record)
+
+
 def main(argv: list[str] | None = None) -> None:
     argv = list(sys.argv[1:] if argv is None else argv)
     from .version import __version__
@@ -100,9 +109,12 @@ def _hydra(command: str, rest: list[str]) -> None:
             run_dir = Path(HydraConfig.get().runtime.output_dir)
             _dispatch(command, cfg, run_dir)
         except MnemodeError as exc:
-            log.error("%s", exc)
+            _log_to_file(exc)
             _fail(exc)
 
+    from .config_check import precheck_overrides
+
+    precheck_overrides(command, rest)  # settings and run directory, before Hydra creates anything
     saved = sys.argv
     sys.argv = [f"mnemode {command}", *rest]
     try:
@@ -282,7 +294,10 @@ def _run_dir_arg(parser: argparse.ArgumentParser, rest: list[str]):
     path = Path(args.run_dir)
     if not path.is_dir():
         raise MnemodeError(str(path), "is not a directory", "pass a run directory printed by `mnemode run` or `mnemode fit`.")
-    return args, RunDir(path)
+    run = RunDir(path)
+    if not run.is_run():  # checked before the writer lock, which would add a file
+        run.load_config()
+    return args, run
 
 
 def _assess(rest: list[str]) -> None:
@@ -294,7 +309,8 @@ def _assess(rest: list[str]) -> None:
     from . import pipeline
 
     cfg = _with_assess_overrides(run.load_config(), args.overrides)
-    pipeline.assess_run(run, cfg)
+    with run.lock("assess"):
+        pipeline.assess_run(run, cfg)
     _print_summary(run)
 
 
@@ -328,7 +344,8 @@ def _export(rest: list[str]) -> None:
     args, run = _run_dir_arg(parser, rest)
     from . import pipeline
 
-    manifest = pipeline.export_run(run, model_name=args.model, onnx=args.onnx, overwrite=args.overwrite)
+    with run.lock("export"):
+        manifest = pipeline.export_run(run, model_name=args.model, onnx=args.onnx, overwrite=args.overwrite)
     print(f"exported {manifest.get('model_name', '')} to {run.export_dir}")
     parity = manifest.get("parity", {})
     if parity:
@@ -340,25 +357,70 @@ def _export(rest: list[str]) -> None:
 def _resume(rest: list[str]) -> None:
     parser = _parser("resume", rest)
     parser.add_argument("run_dir", help="a run directory, or a sweep directory (its unfinished jobs)")
+    parser.add_argument("overrides", nargs="*", metavar="key=value",
+                        help="settings that leave the fit unchanged: assess.*, export.*, fit.lr, progress")
     args = parser.parse_args(rest)
     from . import pipeline
     from .rundir import RunDir
 
     path = Path(args.run_dir)
-    runs = [RunDir(path)] if (path / "config.yaml").exists() else sorted(
-        (RunDir(p.parent) for p in path.glob("*/config.yaml")), key=lambda r: str(r.path))
+    runs = [RunDir(path)] if RunDir(path).is_run() else sorted(
+        (r for r in (RunDir(p.parent) for p in path.glob("*/config.yaml")) if r.is_run()), key=lambda r: str(r.path))
     if not runs:
         raise MnemodeError(str(path), "holds no mnemode run (no config.yaml here or one level below)",
                            "pass a run directory or a sweep directory.")
     for run in runs:
         if run.status().get("state") == "finished":
-            print(f"{run.path}: finished, skipped")
+            note = " (the overrides were not applied: a finished run has nothing left to resume)" \
+                if args.overrides else ""
+            print(f"{run.path}: finished, skipped{note}")
             continue
         cfg = run.load_config()
         stages = tuple(run.status().get("stages_requested", ("fit", "assess", "export")))
         print(f"resuming {run.path}")
-        pipeline.run_pipeline(cfg, run.path, resume=True, stages=stages)
+        with run.lock("resume"):
+            cfg = _resume_config(run, cfg, args.overrides)
+            pipeline.run_pipeline(cfg, run.path, resume=True, stages=stages)
         _print_summary(run)
+
+
+def _resume_config(run, cfg, overrides: list[str]):
+    """The stored config with a resume's accepted overrides, written back and recorded in the history."""
+    from omegaconf import OmegaConf
+
+    from .config_check import apply_overrides, resume_overrides
+    from .fileio import write_text
+
+    if not overrides:
+        _check_stored(run, cfg)
+        return cfg
+    changes = resume_overrides(overrides, cfg)
+    new = apply_overrides(cfg, changes)
+    old = {k: OmegaConf.select(cfg, k) for k in changes}
+    write_text(run.config_path, OmegaConf.to_yaml(new, resolve=True))
+    run.record("resume overrides", changes={k: {"from": _plain(old[k]), "to": _plain(v)} for k, v in changes.items()})
+    return new
+
+
+def _check_stored(run, cfg) -> None:
+    """Check a stored config before resuming; a bad resumable setting is answered with the resume that fixes it."""
+    from .config_check import RESUME_SAFE, check_config
+    from .errors import ConfigError
+
+    try:
+        check_config(cfg)
+    except ConfigError as exc:
+        if any(exc.what == p.rstrip(".") or (p.endswith(".") and exc.what.startswith(p)) for p in RESUME_SAFE):
+            raise ConfigError(exc.what, f"{exc.problem} (in the run's stored config)",
+                              f"{exc.fix or ''} Give the new value to the resume, e.g. "
+                              f"`mnemode resume {run.path} {exc.what}=...`.".strip()) from None
+        raise
+
+
+def _plain(v):
+    from omegaconf import OmegaConf
+
+    return OmegaConf.to_container(v) if OmegaConf.is_config(v) else v
 
 
 def _rollout(rest: list[str]) -> None:

@@ -7,7 +7,18 @@ exit non-zero instead of a traceback.
 
 from __future__ import annotations
 
-__all__ = ["MnemodeError", "ConfigError", "DataError", "CheckpointError", "FitDiverged"]
+import re
+
+# numpy scalars print as np.float64(1.5) under numpy >= 2; users should read 1.5
+_NUMPY_REPR = re.compile(r"\bnp\.(?:float|int|uint|bool|complex)_?\d*\(([^()]*)\)")
+
+
+def plain_numbers(text: str) -> str:
+    """``text`` with numpy scalar reprs (``np.float64(0.5)``) shown as plain numbers (``0.5``)."""
+    return _NUMPY_REPR.sub(r"\1", text)
+
+__all__ = ["MnemodeError", "ConfigError", "DataError", "CheckpointError", "FitDiverged", "RunLocked",
+           "plain_numbers"]
 
 
 class MnemodeError(Exception):
@@ -28,6 +39,7 @@ class MnemodeError(Exception):
         msg = f"{what}: {problem}"
         if fix:
             msg += f" Fix: {fix}"
+        msg = plain_numbers(msg)
         super().__init__(msg)
 
 
@@ -47,3 +59,9 @@ class FitDiverged(MnemodeError):
     """A fit produced non-finite losses or parameters."""
 
     exit_code = 3
+
+
+class RunLocked(CheckpointError):
+    """Another live process is writing into the run directory."""
+
+    exit_code = 4

@@ -24,7 +24,7 @@ from .fitting.checkpoint import checkpoint_step
 from .fitting.context import FitContext
 from .hybrid import HybridField, HybridFlowMap
 from .metric_labels import metrics_labels, versions
-from .rundir import RunDir
+from .rundir import RunDir, holds_lock
 from .solvers import RK4, FlowMap, Solver
 from .sources import DataSplits, prepare_data, run_data, save_run_data
 from .systems.base import System
@@ -178,8 +178,12 @@ def load_model(run: RunDir, name: str, cfg: DictConfig, system: System, dt: floa
     """Rebuild model ``name`` from the run's config, then load its tensors."""
     path = run.model_path(name)
     if not path.exists():
-        raise CheckpointError(str(path), f"fitted model {name!r} is missing",
-                              f"fit it first (`mnemode resume {run.path}` finishes an interrupted run).")
+        if run.stage_done(f"fit:{name}"):  # fitted once, then deleted or moved: a resume would skip it
+            raise CheckpointError(str(path), f"fitted model {name!r} was deleted or moved after the run "
+                                  "fitted it", f"restore {path.name} into {path.parent} from a backup, or refit "
+                                  f"in a new run with the settings in {run.config_path}.")
+        raise CheckpointError(str(path), f"fitted model {name!r} is missing: the run stopped before fitting it",
+                              f"finish the fit with `mnemode resume {run.path}`.")
     try:
         payload = torch.load(path, weights_only=True, map_location="cpu")
     except Exception as exc:
@@ -355,6 +359,7 @@ def _fmt(v) -> str:
     return f"{v:.4g}" if isinstance(v, (int, float)) else str(v)
 
 
+@holds_lock("assess")  # one writer per run directory, from Python as from the command line
 def assess_run(run: RunDir, cfg: DictConfig | None = None, system: System | None = None,
                data: DataSplits | None = None) -> dict:
     """Assess every fitted model of a run on its test set (never refits); writes metrics, figures, report."""
@@ -415,6 +420,7 @@ def _flat_metrics(result: dict) -> dict:
     }
 
 
+@holds_lock("export")  # one writer per run directory, from Python as from the command line
 def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | None = None,
                onnx: bool | None = None, system: System | None = None, data: DataSplits | None = None,
                overwrite: bool = False) -> dict:
@@ -460,8 +466,11 @@ def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | Non
 def run_pipeline(cfg: DictConfig, run_dir: str | Path, *, resume: bool = False, stages=("fit", "assess", "export"),
                  only: list[str] | None = None) -> RunDir:
     """The main job: data, fit, assess, export, in one run directory."""
+    from .config_check import check_config, check_physics_on_data
+
+    check_config(cfg)  # every stage's settings, before anything is written or computed
     run = RunDir(run_dir)
-    run.start(cfg, resume=resume)
+    run.start(cfg, resume=resume, command="resume" if resume else "+".join(stages))
     if not resume:
         run.mark("data", "pending", stages_requested=list(stages))
     try:
@@ -476,6 +485,7 @@ def run_pipeline(cfg: DictConfig, run_dir: str | Path, *, resume: bool = False, 
         })
         run.mark("data")
         if "fit" in stages:
+            check_physics_on_data(system, data.train)  # shape, finiteness and units, before any fitting
             fit_models(cfg, run, system, data, resume=resume, only=only)
         if "assess" in stages and cfg.assess.enabled and not (resume and run.stage_done("assess")):
             assess_run(run, cfg, system, data)

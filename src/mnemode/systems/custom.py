@@ -20,9 +20,11 @@ module that does not import is reported with how to put it on the Python path.
 from __future__ import annotations
 
 import importlib
+import inspect
 import os
 from typing import Any, Sequence
 
+import torch
 from torch import nn
 
 from ..errors import ConfigError
@@ -79,6 +81,10 @@ def custom_system(nominal: nn.Module, state_names: Sequence[str], state_units: S
                           "point system.nominal._target_ at an nn.Module class whose forward(t, x[, u]) "
                           "returns dx/dt.")
     names = tuple(str(s) for s in state_names)
+    if not names:
+        raise ConfigError("system.state_names", "is empty; expected the names of the observed components",
+                          "list them in the order of your data's state columns, e.g. state_names=[X,Y,Z].")
+    _check_output_shape(nominal, len(names))
     if not hasattr(nominal, "dim"):
         nominal.dim = len(names)
     return System(name=name, state_names=names,
@@ -86,3 +92,35 @@ def custom_system(nominal: nn.Module, state_names: Sequence[str], state_units: S
                   time_unit=time_unit, nominal=nominal, truth=None,
                   observed_index=tuple(range(len(names))), lyapunov_exponent=lyapunov_exponent,
                   ring=ring, description=f"user physics {type(nominal).__module__}.{type(nominal).__name__}")
+
+
+def _check_output_shape(nominal: nn.Module, dim: int) -> None:
+    """Call the field once on a small batch of states and refuse an output of another shape.
+
+    Skipped for fields that need forcing inputs ``u`` (their shape is checked on
+    the data, with the forcing, before fitting). A field that fails on these
+    probe states is left to that data check too: the states here are arbitrary.
+    """
+    try:
+        params = inspect.signature(nominal.forward).parameters
+    except (TypeError, ValueError):
+        return
+    u = params.get("u")
+    if u is not None and u.default is inspect.Parameter.empty:
+        return
+    x = torch.linspace(0.1, 0.9, 2 * dim, dtype=torch.float64).reshape(2, dim)
+    try:
+        probe = next(iter(nominal.buffers()), next(iter(nominal.parameters()), None))
+        if probe is not None and probe.is_floating_point():
+            x = x.to(probe.dtype)
+        with torch.no_grad():
+            out = nominal(torch.zeros((), dtype=x.dtype), x)
+    except Exception:  # judged on the data's own states later
+        return
+    if not isinstance(out, torch.Tensor) or tuple(out.shape) != (2, dim):
+        got = tuple(out.shape) if isinstance(out, torch.Tensor) else type(out).__name__
+        name = f"{type(nominal).__module__}.{type(nominal).__name__}"
+        raise ConfigError(f"system.nominal ({name})", f"returned {got} for a batch of states of shape (2, {dim}) "
+                          f"({dim} state_names); expected dx/dt with the shape of x",
+                          "return a tensor shaped like x (..., dim), e.g. torch.stack([dX, dY, dZ], dim=-1), "
+                          "and list one state name per component.")
