@@ -3,15 +3,16 @@
 Stages, lowest first (a module may import its own stage and those below it):
 
     base        errors, fileio, version, linalg, configs_path, config_docs, metric_labels,
-                reproducible, distributed
-    physics     systems, solvers, data, lyapunov
+                reproducible, distributed, config_safety, resolvers
+    physics     systems, solvers, data, loading, lyapunov
     closures    closures
     hybrid      hybrid
     shared      forecasting, validity (what fitting and assessment share)
     fitting     fitting
     assess      assess
     export      export, simulator
-    job         pipeline, rundir, run_index: the modules that orchestrate and list runs
+    job         pipeline, rundir, run_index, sources, config_check: the modules that orchestrate,
+                feed, check and list runs
     reading     explain (reads a fitted run's correction)
     command     cli, __main__, command_help
 
@@ -38,6 +39,7 @@ PLACES = {
     "__init__": "command",  # the public API re-exports from every stage
     "errors": "base", "fileio": "base", "version": "base", "linalg": "base", "configs_path": "base",
     "config_docs": "base", "metric_labels": "base", "reproducible": "base", "distributed": "base",
+    "config_safety": "base", "resolvers": "base", "loading": "physics",
     "systems": "physics", "solvers": "physics", "data": "physics", "lyapunov": "physics",
     "closures": "closures",
     "hybrid": "hybrid",
@@ -45,7 +47,7 @@ PLACES = {
     "fitting": "fitting",
     "assess": "assess",
     "export": "export", "simulator": "export",
-    "pipeline": "job", "rundir": "job", "run_index": "job",
+    "pipeline": "job", "rundir": "job", "run_index": "job", "sources": "job", "config_check": "job",
     "explain": "reading",
     "cli": "command", "__main__": "command", "command_help": "command",
 }

@@ -176,7 +176,8 @@ def check_config(cfg: DictConfig, *, build_fitters: bool = True, data_only: bool
         _number(cfg, "solver.step", gt=0, optional=True)
 
     # -- data: what is known before generation ------------------------------------------
-    source = _choice(cfg, "data.source", ("generated", "file"))
+    target = str(_get(cfg, "data._target_") or "")
+    source = {"mnemode.sources.GeneratedSource": "generated", "mnemode.sources.FileSource": "file"}.get(target)
     dt = duration = test_duration = None
     if source == "generated":
         dt = _number(cfg, "data.dt", gt=0, example=0.02)
@@ -199,8 +200,9 @@ def check_config(cfg: DictConfig, *, build_fitters: bool = True, data_only: bool
                               "shorten warm_up or lengthen data.duration.")
     elif source == "file":
         path = _get(cfg, "data.path")
-        if path in (None, "???"):
-            raise ConfigError("data.path", "is not set", "pass data.path=/path/to/observations.csv")
+        if path in (None, "???", _ABSENT) and _get(cfg, "data.train") in (None, _ABSENT):
+            raise ConfigError("data.path", "is not set (nor data.train)",
+                              "pass data.path=/path/to/observations.csv, or data.train=... and data.test=... files.")
         split = _choice(cfg, "data.split", ("trajectory", "time"))
         if split == "trajectory":
             for key in ("n_train", "n_val", "n_test"):

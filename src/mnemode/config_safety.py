@@ -7,7 +7,7 @@ even imported) the whole tree -- nested nodes and lists included -- is checked
 against these rules:
 
 * ``_target_`` naming mnemode's own building blocks is allowed: a class defined
-  in ``mnemode.systems``, ``mnemode.closures``, ``mnemode.solvers``,
+  in ``mnemode.systems``, ``mnemode.closures``, ``mnemode.solvers``, ``mnemode.sources``,
   ``mnemode.fitting`` or ``mnemode.hybrid``, or a system factory function in
   ``mnemode.systems``. The *resolved* object must be defined there, so a path
   such as ``mnemode.fitting.checkpoint.torch.load`` (a re-exported foreign
@@ -42,7 +42,8 @@ from .errors import ConfigError
 
 __all__ = ["user_targets", "check_stored_config", "check_target", "UnsafeConfig", "SAFE_PACKAGES"]
 
-SAFE_PACKAGES = ("mnemode.systems", "mnemode.closures", "mnemode.solvers", "mnemode.fitting", "mnemode.hybrid")
+SAFE_PACKAGES = ("mnemode.systems", "mnemode.closures", "mnemode.solvers", "mnemode.fitting", "mnemode.hybrid",
+                 "mnemode.sources")
 _FACTORY_PACKAGES = ("mnemode.systems",)
 # libraries mnemode runs on: none of them holds a user's physics, and several can run code or touch files
 _FOREIGN_DENY = frozenset({
