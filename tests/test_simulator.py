@@ -364,11 +364,16 @@ def test_script_runs_without_mnemode_and_matches_the_loader(memory, demo, tmp_pa
                          "--out", tmp_path / "forecast.csv")
     assert proc.returncode == 0, proc.stderr
     assert "MNEMODE-NOT-IMPORTABLE" in proc.stdout
-    got = np.loadtxt(tmp_path / "forecast.csv", delimiter=",", skiprows=1)
     want = sim.rollout(None, 50, history=hist.states)[:, 0].numpy()
-    assert got.shape == (51, 4)
-    np.testing.assert_allclose(got[:, 0], np.arange(51) * DT, rtol=0, atol=1e-12)
-    np.testing.assert_allclose(got[:, 1:], want, rtol=0, atol=1e-12)
+    # the script writes the layout mnemode rollout writes: byte for byte the same file
+    rollout_to_file(sim, None, 50, tmp_path / "same.csv", history=hist.states, t0=float(hist.times[-1]),
+                    progress=False)
+    assert (tmp_path / "forecast.csv").read_text() == (tmp_path / "same.csv").read_text()
+    back = load_trajectories(tmp_path / "forecast.csv", expected_dim=3)
+    assert back.states.shape == (51, 1, 3)
+    # times continue from the history's last time
+    np.testing.assert_allclose(back.times, hist.times[-1] + np.arange(51) * DT, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(back.states[:, 0], want, rtol=0, atol=1e-12)
     final = [float(part.split("=")[1]) for part in proc.stdout.split("final state: ")[1].strip().split(", ")]
     np.testing.assert_allclose(final, want[-1], rtol=1e-9)
 
