@@ -314,6 +314,11 @@ def _rollout(rest: list[str]) -> None:
     elif x0 is None:
         raise MnemodeError("rollout", "needs a starting point", "pass --x0 or --history.")
     else:
+        if sim.hidden_size and not args.cold_start:
+            raise MnemodeError("--x0", f"starts a model with memory ({sim.hidden_size} hidden components) without "
+                               "a warm-up, so its hidden state would be the untrained initial vector",
+                               f"pass --history with {sim.history_length} observed rows (warm_up_steps + 1), or "
+                               "--cold-start to start cold knowingly.")
         times = t0 + sim.dt * np.arange(args.steps + 1)
     forcing = None
     if args.forcing is not None:
@@ -326,9 +331,14 @@ def _rollout(rest: list[str]) -> None:
     if forcing is not None and history is not None and forcing.shape[1] not in (1, history.shape[1]):
         raise MnemodeError(str(args.forcing), f"holds {forcing.shape[1]} trajectories but the history has "
                            f"{history.shape[1]}", "give one forcing signal, or one per history trajectory.")
-    out = rollout_to_file(sim, x0, args.steps, args.out, history=history, progress=True, overwrite=args.overwrite,
-                          forcing=None if forcing is None else forcing[:, 0] if forcing.shape[1] == 1 else forcing,
-                          t0=t0, cold_start=args.cold_start)
+    import warnings
+
+    with warnings.catch_warnings():
+        if args.cold_start:  # a short history was accepted knowingly: no reminder
+            warnings.filterwarnings("ignore", message="history has")
+        out = rollout_to_file(sim, x0, args.steps, args.out, history=history, progress=True,
+                              overwrite=args.overwrite, t0=t0, cold_start=args.cold_start,
+                              forcing=None if forcing is None else forcing[:, 0] if forcing.shape[1] == 1 else forcing)
     print(f"wrote {args.steps + 1} states to {out}")
 
 
