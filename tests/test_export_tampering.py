@@ -190,3 +190,25 @@ def test_plain_torch_script_refuses_crafted_archive_without_running_it(clean, tm
     # the clean export runs in the same setting
     proc = run_script_without_mnemode(tmp_path, clean, "--steps", 2, "--x0", "0.1,0.2")
     assert proc.returncode == 0, proc.stderr[-2000:]
+
+
+@pytest.mark.slow  # four fresh interpreters importing torch
+def test_key_file_checks_the_signature_in_the_command_and_the_script(clean, tmp_path):
+    from mnemode.archive import sign
+
+    signed = tmp_path / "signed"
+    shutil.copytree(clean, signed)
+    key = b"0123456789abcdef0123456789abcdef"
+    (signed / "simulator.sig").write_text(sign((signed / "simulator.json").read_bytes(), key))
+    (tmp_path / "good.key").write_bytes(key + b"\n")
+    (tmp_path / "bad.key").write_bytes(b"fedcba9876543210fedcba9876543210\n")
+    for keyfile, ok in (("good.key", True), ("bad.key", False)):
+        out = tmp_path / f"{keyfile}.csv"
+        r = subprocess.run([sys.executable, "-m", "mnemode", "rollout", str(signed), "--x0", "0.1,0.2", "--steps", "2",
+                            "--out", str(out), "--key-file", str(tmp_path / keyfile)], cwd=tmp_path,
+                           capture_output=True, text=True, timeout=300)
+        assert (r.returncode == 0) == ok, r.stderr[-2000:]
+        assert ok or ("tampered" in r.stderr and "Traceback" not in r.stderr)
+        proc = run_script_without_mnemode(tmp_path, signed, "--steps", 2, "--x0", "0.1,0.2", "--key-file",
+                                          tmp_path / keyfile)
+        assert (proc.returncode == 0) == ok, proc.stderr[-2000:]

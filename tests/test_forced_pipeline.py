@@ -41,7 +41,7 @@ def mnemode(*args, cwd: Path, timeout=600):
                           text=True, timeout=timeout)
 
 
-@pytest.mark.slow  # a whole run, two exports and six fresh interpreters: a minute or two on a shared CPU
+@pytest.mark.slow  # a whole run, two exports, six fresh interpreters: about a minute unloaded (4.7 min at load 10 on 2 cores)
 def test_forced_slab_run_export_rollout_and_plain_torch_script(tmp_path):
     lab = System(name="slab", state_names=("T1", "T2"), state_units=("K", "K"), time_unit="s", nominal=NominalSlab(),
                  truth=TrueSlab(), observed_index=(0, 1), initial_mean=(3.0, 2.0, 2.5), initial_scale=(1.0, 1.0, 1.0))
