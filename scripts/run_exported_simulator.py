@@ -175,7 +175,7 @@ def main(argv=None) -> None:
         times = np.concatenate((hist[:, 0], t0 + dt * np.arange(1, args.steps + 1)))
     elif args.x0 is not None:
         if hidden and not args.cold_start:
-            fail("--x0", f"starts a model with memory without a warm-up", f"give --history ({need} rows) or --cold-start")
+            fail("--x0", "starts a model with memory without a warm-up", f"give --history ({need} rows) or --cold-start")
         t0, x0 = args.t0, torch.tensor([numbers(args.x0, dim, "--x0")], dtype=dtype)
         times = t0 + dt * np.arange(args.steps + 1)
     else:

@@ -30,7 +30,6 @@ from __future__ import annotations
 
 import copy
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Mapping
 
 import torch
