@@ -10,7 +10,9 @@ from typing import Mapping
 import numpy as np
 import torch
 
+from ..hybrid import HybridFlowMap
 from ..simulator import FORMAT_NAME, FORMAT_VERSION
+from ..solvers import substeps_for
 from .checks import ExportRequest
 from .programs import Program
 
@@ -91,9 +93,6 @@ def hidden_init_record(req: ExportRequest, r_init, closure, warm_file: str | Non
 
 
 def model_record(frozen, solver, substitution, dt: float, forced: bool) -> dict:
-    from ..hybrid import HybridFlowMap
-    from ..solvers import substeps_for
-
     discrete = isinstance(frozen, HybridFlowMap)
     closure = frozen.closure
     physics = frozen.flow_map.field if discrete and frozen.flow_map is not None else getattr(frozen, "physics", None)
