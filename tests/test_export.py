@@ -360,10 +360,11 @@ def test_bad_export_arguments_are_clear(tmp_path, demo):
         _export(WallLawClosure(), tmp_path, demo)
     with pytest.raises(ConfigError, match="dt"):
         _export(_discrete_model(RandomTanhClosure()), tmp_path, demo, solver=None, dt=0.05)
-    forced = _continuous_model().double()
-    forced.forcing = lambda t: torch.zeros(1)
-    with pytest.raises(ConfigError, match="forcing"):
-        _export(forced, tmp_path, demo)
+    with pytest.raises(ConfigError, match="forcing_names.*discrete"):
+        _export(_discrete_model(RandomTanhClosure()), tmp_path, demo, solver=None, forcing_names=["q"],
+                forcing_envelope={"q": [0, 1]})
+    with pytest.raises(ConfigError, match="forcing_envelope"):
+        _export(model, tmp_path, demo, forcing_names=["q"], forcing_envelope={"p": [0, 1]})
     assert not any(tmp_path.iterdir())
 
 

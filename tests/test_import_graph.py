@@ -3,7 +3,7 @@
 Stages, lowest first (a module may import its own stage and those below it):
 
     base        errors, fileio, version, linalg, configs_path, config_docs, metric_labels,
-                reproducible, distributed, config_safety, resolvers
+                reproducible, distributed, config_safety, resolvers, archive
     physics     systems, solvers, data, loading, lyapunov
     closures    closures
     hybrid      hybrid
@@ -46,7 +46,7 @@ PLACES = {
     "forecasting": "shared", "validity": "shared",
     "fitting": "fitting",
     "assess": "assess",
-    "export": "export", "simulator": "export",
+    "export": "export", "simulator": "export", "archive": "base",
     "pipeline": "job", "rundir": "job", "run_index": "job", "sources": "job", "config_check": "job",
     "explain": "reading",
     "cli": "command", "__main__": "command", "command_help": "command",

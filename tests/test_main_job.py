@@ -58,8 +58,8 @@ def test_run_leaves_a_complete_run_directory(tiny_run):
     pngs = list((run / "figures").glob("*.png"))
     assert len(pngs) >= 4
     assert list((run / "tb").glob("events.out.tfevents.*"))
-    assert (run / "export" / "simulator.pt2").exists()
-    manifest = json.loads((run / "export" / "simulator.json").read_text())
+    assert (run / "export" / "memory" / "simulator.pt2").exists()
+    manifest = json.loads((run / "export" / "memory" / "simulator.json").read_text())
     assert manifest["state"]["names"] == ["flow_rate", "temp_horizontal", "temp_vertical"]
     assert manifest["parity"]["step_program"]["max_abs_diff"] <= 1e-6
     assert any("safety" in c for c in manifest["cautions"])
@@ -89,23 +89,27 @@ def test_export_refuses_to_overwrite_then_replaces_on_request(tiny_run):
     cwd, run, _ = tiny_run
     r = mnemode("export", str(run), cwd=cwd)
     assert r.returncode != 0 and "Fix:" in r.stderr and "Traceback" not in r.stderr
-    r = mnemode("export", str(run), "--model", "memoryless", "--overwrite", cwd=cwd)
+    r = mnemode("export", str(run), "--model", "memoryless", cwd=cwd)
     assert r.returncode == 0, r.stderr[-3000:]
-    assert json.loads((run / "export" / "simulator.json").read_text())["state"]["hidden_size"] == 0
+    assert json.loads((run / "export" / "memoryless" / "simulator.json").read_text())["state"]["hidden_size"] == 0
+    # the main model's export is still there, and stays the default
+    assert json.loads((run / "export" / "memory" / "simulator.json").read_text())["state"]["hidden_size"] > 0
+    assert json.loads((run / "export" / "exports.json").read_text())["default"] == "memory"
 
 
 def test_rollout_command_writes_a_trajectory(tiny_run):
     cwd, run, _ = tiny_run
     out = cwd / "forecast.csv"
     r = mnemode("rollout", str(run / "export"), "--x0", "1.0,2.0,45.0", "--steps", "50", "--out", str(out),
-                cwd=cwd)
+                "--cold-start", cwd=cwd)
     assert r.returncode == 0, r.stderr[-3000:]
     from mnemode.data import load_trajectories
 
     traj = load_trajectories(out)
     assert traj.states.shape == (51, 1, 3)
     np.testing.assert_allclose(traj.states[0, 0], [1.0, 2.0, 45.0])
-    r = mnemode("rollout", str(run / "export"), "--x0", "1,2,45", "--steps", "5", "--out", str(out), cwd=cwd)
+    r = mnemode("rollout", str(run / "export"), "--x0", "1,2,45", "--steps", "5", "--out", str(out), "--cold-start",
+                cwd=cwd)
     assert r.returncode != 0 and "already exists" in r.stderr
 
 
@@ -163,7 +167,7 @@ def test_bring_your_own_physics_example_runs_end_to_end(tmp_path):
     assert m["memoryless"] > m["physics_only"] and m["memoryless"] >= m["memory"]
     # a system without a truth generator has no oracle; the report says so instead of failing
     assert "oracle" not in metrics["models"] or metrics["models"]["oracle"]["validity_time_median"] is None
-    manifest = json.loads((run / "export" / "simulator.json").read_text())
+    manifest = json.loads((run / "export" / "memory" / "simulator.json").read_text())
     assert manifest["state"]["names"] == ["v", "i"]
 
 
@@ -218,7 +222,9 @@ def test_forcing_inputs_reach_physics_and_closure_through_the_main_job(tmp_path)
     assert r.returncode == 0, r.stderr[-3000:]
     run = run_dir_from(r.stdout)
     status = json.loads((run / "status.json").read_text())
-    assert status["stages"]["export"] == "skipped: forced model"
+    assert status["stages"]["export"] == "finished"
+    manifest = json.loads((run / "export" / "memoryless" / "simulator.json").read_text())
+    assert manifest["forcing"]["names"] == ["drive"] and manifest["parity"]["passed"]
     metrics = json.loads((run / "metrics.json").read_text())
     # the rig is not chaotic: the corrected model should track it longer than the uncorrected one
     assert metrics["models"]["memoryless"]["validity_time_median"] > metrics["models"]["physics_only"]["validity_time_median"]

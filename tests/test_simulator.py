@@ -146,7 +146,7 @@ def test_envelope_warns_by_default(memory):
     sim = memory[2]
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        sim.rollout(_outside_x0(sim), 2)
+        sim.rollout(_outside_x0(sim), 2, cold_start=True)
     assert len(caught) == 1 and issubclass(caught[0].category, EnvelopeWarning)
     assert caught[0].filename == __file__  # points at the caller's line
     assert "x0, trajectory 0: component 'temp_vertical'" in str(caught[0].message)
@@ -156,12 +156,12 @@ def test_envelope_warns_by_default(memory):
 def test_envelope_error_and_ignore(memory):
     sim = memory[2].with_envelope(on_envelope="error")
     with pytest.raises(EnvelopeError, match="temp_vertical") as info:
-        sim.rollout(_outside_x0(sim), 2)
+        sim.rollout(_outside_x0(sim), 2, cold_start=True)
     assert isinstance(info.value, MnemodeError) and "on_envelope='ignore'" in str(info.value)
     sim.on_envelope = "ignore"
     with warnings.catch_warnings():
         warnings.simplefilter("error")  # any warning fails the test
-        sim.rollout(_outside_x0(sim), 2)
+        sim.rollout(_outside_x0(sim), 2, cold_start=True)
     with pytest.raises(ConfigError, match="on_envelope"):
         load_simulator(memory[1], on_envelope="shout")
     with pytest.raises(ConfigError, match="on_envelope"):
@@ -178,10 +178,10 @@ def test_envelope_margin_rule(memory):
     m = sim.manifest["envelope"]["default_margin"]
     assert m == 0.1
     inside = [float(np.mean(env["flow_rate"])), float(np.mean(env["temp_horizontal"])), hi + 0.9 * m * (hi - lo)]
-    sim.rollout(inside, 0)  # within the margin: no error
+    sim.rollout(inside, 0, cold_start=True)  # within the margin: no error
     sim.envelope_margin = 0.0
     with pytest.raises(EnvelopeError):
-        sim.rollout(inside, 0)
+        sim.rollout(inside, 0, cold_start=True)
     lower, upper = sim.bounds()
     assert upper[2].item() == hi and lower[2].item() == lo
 
@@ -236,16 +236,16 @@ def test_shape_errors_name_argument_shape_and_components(memory, narrow):
 def test_dtype_and_value_errors(memory):
     sim = memory[2]
     with pytest.raises(DataError, match=r"torch.float32 tensor.*float64.*x0.to\(torch.float64\)"):
-        sim.rollout(torch.tensor([0.0, 0.0, 45.0]), 1)
+        sim.rollout(torch.tensor([0.0, 0.0, 45.0]), 1, cold_start=True)
     with pytest.raises(DataError, match="torch.int64"):
-        sim.rollout(torch.tensor([0, 0, 45]), 1)
+        sim.rollout(torch.tensor([0, 0, 45]), 1, cold_start=True)
     with pytest.raises(DataError, match="non-finite"):
-        sim.rollout([0.0, float("nan"), 45.0], 1)
+        sim.rollout([0.0, float("nan"), 45.0], 1, cold_start=True)
     with pytest.raises(DataError, match="not an array of numbers"):
-        sim.rollout(["a", "b", "c"], 1)
+        sim.rollout(["a", "b", "c"], 1, cold_start=True)
     # numpy arrays and lists of any float type are converted
-    a = sim.rollout(np.array([1.0, 2.0, 45.0], dtype=np.float32), 2)
-    b = sim.rollout([1.0, 2.0, 45.0], 2)
+    a = sim.rollout(np.array([1.0, 2.0, 45.0], dtype=np.float32), 2, cold_start=True)
+    b = sim.rollout([1.0, 2.0, 45.0], 2, cold_start=True)
     assert a.dtype == torch.float64 and torch.equal(a, b)
 
 
@@ -302,9 +302,9 @@ def test_rollout_to_file_round_trip_and_no_overwrite(memory, demo, tmp_path, suf
     np.testing.assert_allclose(back.times, np.arange(41) * DT, rtol=0, atol=1e-12)
     before = path.read_bytes()
     with pytest.raises(MnemodeError, match="already exists.*overwrite=True"):
-        rollout_to_file(sim, [0.0, 0.0, 45.0], 5, path, progress=False)
+        rollout_to_file(sim, [0.0, 0.0, 45.0], 5, path, progress=False, cold_start=True)
     assert path.read_bytes() == before
-    rollout_to_file(sim, [0.0, 0.0, 45.0], 5, path, progress=False, overwrite=True)
+    rollout_to_file(sim, [0.0, 0.0, 45.0], 5, path, progress=False, overwrite=True, cold_start=True)
     assert load_trajectories(path).states.shape == (6, 1, 3)
 
 
@@ -364,11 +364,16 @@ def test_script_runs_without_mnemode_and_matches_the_loader(memory, demo, tmp_pa
                          "--out", tmp_path / "forecast.csv")
     assert proc.returncode == 0, proc.stderr
     assert "MNEMODE-NOT-IMPORTABLE" in proc.stdout
-    got = np.loadtxt(tmp_path / "forecast.csv", delimiter=",", skiprows=1)
     want = sim.rollout(None, 50, history=hist.states)[:, 0].numpy()
-    assert got.shape == (51, 4)
-    np.testing.assert_allclose(got[:, 0], np.arange(51) * DT, rtol=0, atol=1e-12)
-    np.testing.assert_allclose(got[:, 1:], want, rtol=0, atol=1e-12)
+    # the script writes the layout mnemode rollout writes: byte for byte the same file
+    rollout_to_file(sim, None, 50, tmp_path / "same.csv", history=hist.states, t0=float(hist.times[-1]),
+                    progress=False)
+    assert (tmp_path / "forecast.csv").read_text() == (tmp_path / "same.csv").read_text()
+    back = load_trajectories(tmp_path / "forecast.csv", expected_dim=3)
+    assert back.states.shape == (51, 1, 3)
+    # times continue from the history's last time
+    np.testing.assert_allclose(back.times, hist.times[-1] + np.arange(51) * DT, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(back.states[:, 0], want, rtol=0, atol=1e-12)
     final = [float(part.split("=")[1]) for part in proc.stdout.split("final state: ")[1].strip().split(", ")]
     np.testing.assert_allclose(final, want[-1], rtol=1e-9)
 

@@ -36,7 +36,7 @@ _LAZY = {
     "ReadoutRidgeFit": "fitting", "TrajectoryFit": "fitting",
     # assessment, export, the exported simulator
     "AssessSettings": "assess", "assess_models": "assess",
-    "export_simulator": "export", "load_simulator": "simulator",
+    "export_simulator": "export", "load_simulator": "simulator", "Simulator": "simulator",
     # the whole job
     "compose_config": "pipeline", "run_pipeline": "pipeline", "load_run_model": "pipeline",
     "RunDir": "rundir",

@@ -256,7 +256,7 @@ def _print_summary(run) -> None:
     print(f"run directory: {run.path}")
     for label, path in (("report", run.path / "report.md"), ("figures", run.path / "figures"),
                         ("metrics", run.metrics_path), ("TensorBoard", run.tb_dir),
-                        ("simulator", run.export_dir / "simulator.pt2")):
+                        ("simulators", run.export_dir)):
         if path.exists():
             extra = f"   (tensorboard --logdir {path})" if label == "TensorBoard" else ""
             print(f"  {label + ':':<12}{path}{extra}")
@@ -339,17 +339,27 @@ def _export(rest: list[str]) -> None:
     parser = _parser("export", rest)
     parser.add_argument("run_dir", help="a run directory printed by `mnemode run` or `mnemode fit`")
     parser.add_argument("--model", default=None, help="which fitted model (default: the run's main model)")
+    parser.add_argument("--out", default=None, help="export folder (default: RUN_DIR/export/<model>)")
     parser.add_argument("--onnx", action="store_true", default=None, help="also write simulator.onnx")
-    parser.add_argument("--overwrite", action="store_true", help="replace an existing export of this run")
+    parser.add_argument("--overwrite", action="store_true", help="replace an existing export in that folder")
+    parser.add_argument("--key-file", default=None,
+                        help="sign the export with the key in this file (HMAC-SHA256; default: the "
+                             "MNEMODE_SIGNING_KEY variable when set)")
     args, run = _run_dir_arg(parser, rest)
     from . import pipeline
+    from .simulator import read_key
 
+    key = read_key(args.key_file)
     with run.lock("export"):
-        manifest = pipeline.export_run(run, model_name=args.model, onnx=args.onnx, overwrite=args.overwrite)
-    print(f"exported {manifest.get('model_name', '')} to {run.export_dir}")
+        manifest = pipeline.export_run(run, model_name=args.model, onnx=args.onnx, overwrite=args.overwrite,
+                                       out_dir=args.out, key=key)
+    name = manifest.get("model_name", "")
+    where = args.out if args.out is not None else run.export_dir / name
+    print(f"exported {name} to {where}" + (" (signed)" if key else ""))
     parity = manifest.get("parity", {})
     if parity:
-        print(f"parity (exported vs eager): {parity}")
+        print(f"parity (exported vs eager): max abs difference {parity.get('max_abs_diff'):.3g} over "
+              f"{parity.get('steps')} steps (required ≤ {parity.get('tolerance'):g})")
     print("Caution: valid only inside its training envelope; validate against independent measurements "
           "before any use in control, protection or safety decisions.")
 
@@ -428,16 +438,30 @@ def _rollout(rest: list[str]) -> None:
     parser.add_argument("simulator", help="export directory or its simulator.pt2 / simulator.json")
     parser.add_argument("--x0", default=None, help="initial observed state, comma-separated (e.g. 1.0,2.0,45)")
     parser.add_argument("--history", default=None,
-                        help="observed history (.csv/.npz) to warm up the hidden state; x0 defaults to its last state")
+                        help="observed history (.csv/.npz, oldest row first) to warm up the hidden state; "
+                             "needs warm_up_steps + 1 rows; x0 defaults to its last state")
+    parser.add_argument("--forcing", default=None,
+                        help="forcing inputs of a forced simulator: CSV with a time column and one column per "
+                             "input, covering the history and the forecast (linear between rows)")
     parser.add_argument("--steps", type=int, required=True, help="number of observation intervals")
+    parser.add_argument("--t0", type=float, default=0.0, help="time of --x0 when there is no history (default 0)")
+    parser.add_argument("--cold-start", action="store_true",
+                        help="let a model with memory start without a full warm-up (its hidden state then "
+                             "starts from the untrained initial vector)")
     parser.add_argument("--out", required=True, help="output file, .csv or .npz (never overwritten)")
     parser.add_argument("--overwrite", action="store_true", help="replace --out if it exists")
     parser.add_argument("--on-envelope", choices=("warn", "error", "ignore"), default="warn",
-                        help="what to do when the state leaves the training envelope")
+                        help="what to do when the state leaves the training envelope (a non-finite state "
+                             "always stops the rollout)")
+    parser.add_argument("--key-file", default=None,
+                        help="verify the export's signature with the key in this file (default: the "
+                             "MNEMODE_SIGNING_KEY variable when set)")
     args = parser.parse_args(rest)
-    from .simulator import load_simulator, rollout_to_file
+    import numpy as np
 
-    sim = load_simulator(args.simulator, on_envelope=args.on_envelope)
+    from .simulator import load_simulator, read_forcing, read_key, rollout_to_file
+
+    sim = load_simulator(args.simulator, on_envelope=args.on_envelope, key=read_key(args.key_file))
     x0 = None
     if args.x0 is not None:
         try:
@@ -445,14 +469,47 @@ def _rollout(rest: list[str]) -> None:
         except ValueError:
             raise MnemodeError("--x0", f"{args.x0!r} is not a comma-separated list of numbers",
                                f"give {len(sim.state_names)} numbers, e.g. --x0 1.0,2.0,3.0.") from None
-    history = None
+    history, t0, times = None, float(args.t0), None
     if args.history is not None:
         from .data import load_trajectories
 
-        history = load_trajectories(args.history, expected_dim=len(sim.state_names)).states
-    if x0 is None and history is None:
+        kw = {"state_columns": list(sim.state_names)} if str(args.history).endswith(".csv") else {}
+        hist = load_trajectories(args.history, expected_dim=len(sim.state_names), **kw)
+        history, t0 = hist.states, float(hist.times[-1])
+        if sim.hidden_size and hist.states.shape[0] < sim.history_length and not args.cold_start:
+            raise MnemodeError(str(args.history), f"has {hist.states.shape[0]} rows per trajectory; a full warm-up "
+                               f"of this model needs {sim.history_length} (warm_up_steps + 1)",
+                               f"give at least {sim.history_length} observed rows, or pass --cold-start to accept "
+                               "a hidden state that still remembers its start.")
+        times = np.concatenate((hist.times, t0 + sim.dt * np.arange(1, args.steps + 1)))
+    elif x0 is None:
         raise MnemodeError("rollout", "needs a starting point", "pass --x0 or --history.")
-    out = rollout_to_file(sim, x0, args.steps, args.out, history=history, progress=True, overwrite=args.overwrite)
+    else:
+        if sim.hidden_size and not args.cold_start:
+            raise MnemodeError("--x0", f"starts a model with memory ({sim.hidden_size} hidden components) without "
+                               "a warm-up, so its hidden state would be the untrained initial vector",
+                               f"pass --history with {sim.history_length} observed rows (warm_up_steps + 1), or "
+                               "--cold-start to start cold knowingly.")
+        times = t0 + sim.dt * np.arange(args.steps + 1)
+    forcing = None
+    if args.forcing is not None:
+        if not sim.forced:
+            raise MnemodeError("--forcing", "was given but this simulator is autonomous", "drop --forcing.")
+        forcing = read_forcing(args.forcing, sim.forcing_names, times)
+    elif sim.forced:
+        raise MnemodeError("rollout", f"this simulator is driven by {', '.join(sim.forcing_names)}",
+                           "pass --forcing FILE with a time column and those columns over the history and forecast.")
+    if forcing is not None and history is not None and forcing.shape[1] not in (1, history.shape[1]):
+        raise MnemodeError(str(args.forcing), f"holds {forcing.shape[1]} trajectories but the history has "
+                           f"{history.shape[1]}", "give one forcing signal, or one per history trajectory.")
+    import warnings
+
+    with warnings.catch_warnings():
+        if args.cold_start:  # a short history was accepted knowingly: no reminder
+            warnings.filterwarnings("ignore", message="history has")
+        out = rollout_to_file(sim, x0, args.steps, args.out, history=history, progress=True,
+                              overwrite=args.overwrite, t0=t0, cold_start=args.cold_start,
+                              forcing=None if forcing is None else forcing[:, 0] if forcing.shape[1] == 1 else forcing)
     print(f"wrote {args.steps + 1} states to {out}")
 
 

@@ -87,8 +87,11 @@ COMMAND_DOCS: dict[str, CommandDoc] = {d.name: d for d in (
     CommandDoc(
         "export", "export a run's model as a frozen simulator",
         "Write a fitted model of a run as a frozen simulator (torch.export programs and a JSON manifest "
-        "with state names, units, Δt, training envelope and metrics) that loads with plain torch.",
-        "mnemode export RUN_DIR [--model NAME] [--onnx] [--overwrite]", (),
+        "with state names, units, Δt, forcing inputs, training envelope and metrics) that loads with plain "
+        "torch. Each model gets its own folder RUN_DIR/export/<model> (the main model is the default of "
+        "RUN_DIR/export), or --out DIR; --key-file signs it. Validate it before use: it is not valid outside "
+        "its training envelope (docs/exported-simulator.md).",
+        "mnemode export RUN_DIR [--model NAME] [--out DIR] [--key-file KEY] [--onnx] [--overwrite]", (),
         "mnemode export mnemode-runs/demo/2026-12-02_10-00-00 --model memoryless"),
     CommandDoc(
         "resume", "continue an interrupted run (or every unfinished job of a sweep)",
@@ -98,9 +101,14 @@ COMMAND_DOCS: dict[str, CommandDoc] = {d.name: d for d in (
         "mnemode resume mnemode-runs/demo/2026-12-02_10-00-00"),
     CommandDoc(
         "rollout", "roll an exported simulator forward from a state or history",
-        "Load an exported simulator (plain torch, hash-checked) and roll it forward from a state or from "
-        "an observed history that first warms up its hidden state; writes the trajectory as CSV or NPZ.",
-        "mnemode rollout SIMULATOR --steps N --out FILE (--x0 X | --history FILE)", (),
+        "Load an exported simulator (plain torch; the archive is inspected before loading and its hashes and, "
+        "when a key is given, its signature checked) and roll it forward. A model with memory starts from an "
+        "observed --history of warm_up_steps + 1 rows (hidden_init.history_length in the export's "
+        "simulator.json), or from --x0 only with --cold-start; a forced simulator takes --forcing covering "
+        "the history and the forecast. Output times continue from the history's last time; the CSV layout "
+        "is the one every mnemode writer uses (docs/exported-simulator.md).",
+        "mnemode rollout SIMULATOR --steps N --out FILE (--history FILE | --x0 X [--cold-start]) [--forcing FILE]",
+        (),
         "mnemode rollout RUN_DIR/export --history last_minutes.csv --steps 500 --out forecast.csv"),
     CommandDoc(
         "correction", "read what a fitted model learned: R² against targets, equations, memory",

@@ -423,12 +423,24 @@ def _flat_metrics(result: dict) -> dict:
 @holds_lock("export")  # one writer per run directory, from Python as from the command line
 def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | None = None,
                onnx: bool | None = None, system: System | None = None, data: DataSplits | None = None,
-               overwrite: bool = False) -> dict:
-    """Export a fitted model of a run as a frozen simulator under ``RUN_DIR/export``."""
-    cfg = cfg if cfg is not None else run.load_config()
-    from .export import check_exportable, export_simulator
+               overwrite: bool = False, out_dir: str | Path | None = None, key: bytes | None = None) -> dict:
+    """Export a fitted model of a run as a frozen simulator under ``RUN_DIR/export/<model>`` (or ``out_dir``).
 
-    name = model_name or cfg.export.get("model") or main_model_name(cfg)
+    Each model of a run has its own folder, so exports of several models sit side
+    by side; ``RUN_DIR/export/exports.json`` names the run's main model as the
+    default that ``load_simulator(RUN_DIR/export)`` picks. A forced run's
+    simulator takes the forcing inputs of its data (names, units from
+    ``data.forcing_units`` when set, training envelope). ``key`` signs the export.
+    """
+    import numpy as np
+
+    from .export import check_exportable, export_simulator
+    from .simulator import INDEX_FILE
+
+    cfg = cfg if cfg is not None else run.load_config()
+
+    main = main_model_name(cfg)
+    name = model_name or cfg.export.get("model") or main
     specs = model_specs(cfg)
     if name not in specs:
         raise ConfigError("export.model", f"is {name!r}, which this run did not fit (models: {list(specs)})",
@@ -438,17 +450,21 @@ def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | Non
     check_exportable(path, fit_diag)
     system = system or make_system(cfg)
     data = data or run_data(run, cfg, system)
-    if data.n_forcing:
-        raise ConfigError(f"export of {name!r}", f"the run's data have forcing inputs {list(data.train.forcing_names)}, "
-                          "and exported simulators are autonomous (state in, state out) in this version",
-                          "embed the model through the Python API (mnemode.pipeline.load_model) instead.")
     model, diagnostics = load_model(run, name, cfg, system, data.dt, data.n_forcing)
     assessment = run.metrics().get("assessment", {}).get("models", {}).get(name)
     steps = int(round(float(cfg.warm_up) / data.dt))
-    log.info("exporting %s as a frozen simulator", name)
+    target = Path(out_dir) if out_dir is not None else run.export_dir / name
+    forcing = {}
+    if data.n_forcing:
+        u = np.asarray(data.train.forcing, dtype=np.float64).reshape(-1, data.n_forcing)
+        names = list(data.train.forcing_names)
+        forcing = {"forcing_names": names, "forcing_units": list(cfg.data.get("forcing_units") or [""] * len(names)),
+                   "forcing_envelope": {n: [float(np.nanmin(u[:, j])), float(np.nanmax(u[:, j]))]
+                                        for j, n in enumerate(names)}}
+    log.info("exporting %s as a frozen simulator to %s", name, target)
     t0 = time.perf_counter()
     manifest = export_simulator(
-        model, run.export_dir, dt=data.dt,
+        model, target, dt=data.dt,
         solver=None if isinstance(model, HybridFlowMap) else make_solver(cfg),
         state_names=list(system.state_names), state_units=list(system.state_units),
         warm_up_steps=steps, envelope=data.train.envelope(),
@@ -456,10 +472,15 @@ def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | Non
         config=OmegaConf.to_container(cfg, resolve=True), time_unit=system.time_unit,
         dtype=dtype_of(cfg), onnx=bool(cfg.export.onnx if onnx is None else onnx),
         extra_manifest={"model_name": name, "envelope_margin": float(cfg.export.envelope_margin)},
-        overwrite=overwrite,
+        overwrite=overwrite, key=key, **forcing,
     )
+    if out_dir is None:
+        from .fileio import write_json
+
+        exported = sorted(p.parent.name for p in run.export_dir.glob("*/simulator.json"))
+        write_json(run.export_dir / INDEX_FILE, {"default": main, "models": exported})
     run.mark("export")
-    log.info("export done in %.1f s: %s", time.perf_counter() - t0, run.export_dir)
+    log.info("export done in %.1f s: %s", time.perf_counter() - t0, target)
     return manifest
 
 
@@ -489,12 +510,7 @@ def run_pipeline(cfg: DictConfig, run_dir: str | Path, *, resume: bool = False, 
             fit_models(cfg, run, system, data, resume=resume, only=only)
         if "assess" in stages and cfg.assess.enabled and not (resume and run.stage_done("assess")):
             assess_run(run, cfg, system, data)
-        if "export" in stages and cfg.export.enabled and data.n_forcing:
-            # the exported step map takes the state only; a forced model needs u(t) inside the step
-            log.warning("export skipped: the data have forcing inputs %s, and exported simulators "
-                        "are autonomous in this version", list(data.train.forcing_names))
-            run.mark("export", "skipped: forced model")
-        elif "export" in stages and cfg.export.enabled and not (resume and run.stage_done("export")):
+        if "export" in stages and cfg.export.enabled and not (resume and run.stage_done("export")):
             # a resumed run may have died half-way through writing the export: replace it
             export_run(run, cfg, system=system, data=data, overwrite=resume)
     except BaseException as exc:
