@@ -37,6 +37,7 @@ commands taking a path:
   assess RUN_DIR      re-assess a run's fitted models (never refits)
   export RUN_DIR      export a run's model as a frozen simulator
   resume RUN_DIR      continue an interrupted run (or every unfinished job of a sweep)
+  study SWEEP_DIR     one table and plots of a sweep's (or several runs') metrics
   rollout SIMULATOR   roll an exported simulator forward from a state or history
 
 examples:
@@ -44,6 +45,8 @@ examples:
   mnemode run experiment=memoryless_regime
   mnemode run -m system.wall_response_time=0.1,1.0 name=tau_sweep
   mnemode assess mnemode-runs/demo/2026-12-02_10-00-00
+  mnemode run -m experiment=study_scale_separation hydra/launcher=workstation
+  mnemode study mnemode-runs/study_scale_separation/sweep_2026-12-02_10-00-00
 """
 
 HYDRA_COMMANDS = ("run", "fit", "generate", "diagnose")
@@ -76,9 +79,11 @@ def main(argv: list[str] | None = None) -> None:
             _resume(rest)
         elif command == "rollout":
             _rollout(rest)
+        elif command == "study":
+            _study(rest)
         else:
             print(f"mnemode: error: unknown command {command!r}. Fix: use one of "
-                  f"{', '.join(HYDRA_COMMANDS + ('assess', 'export', 'resume', 'rollout'))}.", file=sys.stderr)
+                  f"{', '.join(HYDRA_COMMANDS + ('assess', 'export', 'resume', 'rollout', 'study'))}.", file=sys.stderr)
             sys.exit(2)
     except MnemodeError as exc:
         _fail(exc)
@@ -100,7 +105,16 @@ def _hydra(command: str, rest: list[str]) -> None:
         try:
             run_dir = Path(HydraConfig.get().runtime.output_dir)
             _dispatch(command, cfg, run_dir)
-        except MnemodeError as exc:
+        except Exception as exc:
+            from .sweep import failure_recorded, in_sweep
+
+            if in_sweep():  # Hydra goes on with the other jobs
+                log.error("%s", exc, exc_info=not isinstance(exc, MnemodeError))
+                if failure_recorded(run_dir, exc):
+                    return  # in the job's status.json; the end-of-sweep report lists it and exits non-zero
+                raise  # not recorded (e.g. a refusal to write over a run): Hydra raises it when the sweep ends
+            if not isinstance(exc, MnemodeError):
+                raise
             log.error("%s", exc)
             _fail(exc)
 
@@ -224,11 +238,21 @@ def _resume(rest: list[str]) -> None:
     parser.add_argument("run_dir")
     args = parser.parse_args(rest)
     path = Path(args.run_dir)
-    runs = [RunDir(path)] if (path / "config.yaml").exists() else sorted(
-        (RunDir(p.parent) for p in path.glob("*/config.yaml")), key=lambda r: str(r.path))
-    if not runs:
-        raise MnemodeError(str(path), "holds no mnemode run (no config.yaml here or one level below)",
-                           "pass a run directory or a sweep directory.")
+    if (path / "config.yaml").exists():
+        runs = [RunDir(path)]
+    else:
+        from .study import read_jobs
+
+        try:
+            jobs = read_jobs([path])
+        except MnemodeError:
+            raise MnemodeError(str(path), "holds no mnemode run (no config.yaml here or one level below)",
+                               "pass a run directory or a sweep directory.") from None
+        for job in jobs:
+            if job.config is None:
+                print(f"{job.path}: no config.yaml, cannot be resumed ({job.reason})")
+        runs = [RunDir(j.path) for j in jobs if j.config is not None]
+    failed = []
     for run in runs:
         if run.status().get("state") == "finished":
             print(f"{run.path}: finished, skipped")
@@ -236,8 +260,46 @@ def _resume(rest: list[str]) -> None:
         cfg = run.load_config()
         stages = tuple(run.status().get("stages_requested", ("fit", "assess", "export")))
         print(f"resuming {run.path}")
-        pipeline.run_pipeline(cfg, run.path, resume=True, stages=stages)
+        if len(runs) == 1:
+            pipeline.run_pipeline(cfg, run.path, resume=True, stages=stages)
+        else:  # one job's failure is recorded in its status.json; the other jobs go on
+            try:
+                pipeline.run_pipeline(cfg, run.path, resume=True, stages=stages)
+            except MnemodeError as exc:
+                print(f"{run.path}: failed: {exc}", file=sys.stderr)
+                failed.append((run, exc))
+                continue
         _print_summary(run)
+    if failed:
+        worst = max(failed, key=lambda f: f[1].exit_code)[1]
+        raise type(worst)(str(path), f"{len(failed)} of {len(runs)} jobs failed again "
+                          f"({', '.join(r.path.name for r, _ in failed)}); each job's reason is above and in "
+                          "its status.json", f"fix their cause and run `mnemode resume {path}` again, "
+                          f"or see `mnemode study {path}`.")
+
+
+def _study(rest: list[str]) -> None:
+    from .study import summarise
+
+    parser = argparse.ArgumentParser(
+        prog="mnemode study",
+        description="Summarise a sweep (or several run directories): one table of each job's settings, status "
+                    "and headline metrics per model, and plots of each metric against each swept parameter.")
+    parser.add_argument("dirs", nargs="+", help="sweep directories and/or run directories")
+    parser.add_argument("--out", default=None, help="where to write (default: FIRST_DIR/study)")
+    parser.add_argument("--overwrite", action="store_true", help="replace an earlier summary there")
+    args = parser.parse_args(rest)
+    summary = summarise(args.dirs, args.out, overwrite=args.overwrite)
+    jobs = summary.jobs
+    done = sum(j.finished for j in jobs)
+    print(f"{len(jobs)} jobs: {done} finished, {len(jobs) - done} not; swept: "
+          f"{', '.join(summary.parameters) or 'nothing'}")
+    for job in jobs:
+        if not job.finished:
+            print(f"  {job.name}: {job.state}: {job.reason}")
+    print(f"table:   {summary.table_md}")
+    print(f"         {summary.table_csv}")
+    print(f"figures: {len(summary.figures)} in {summary.table_md.parent / 'figures'}")
 
 
 def _rollout(rest: list[str]) -> None:
