@@ -252,6 +252,9 @@ def _resume(rest: list[str]) -> None:
             if job.config is None:
                 print(f"{job.path}: no config.yaml, cannot be resumed ({job.reason})")
         runs = [RunDir(j.path) for j in jobs if j.config is not None]
+        if not runs:
+            raise MnemodeError(str(path), "holds no job that started a run (no config.yaml one level below)",
+                               "run the sweep again; there is nothing here to resume.")
     failed = []
     for run in runs:
         if run.status().get("state") == "finished":
