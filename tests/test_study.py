@@ -192,6 +192,9 @@ def test_study_presets_sweep_what_they_say():
     assert set(model_specs(cfg)) == {"memory", "memoryless", "data_only"}  # + physics-only and oracle, always
     assert cfg.data.seed == cfg.seed
 
+    cfg = _compose(["experiment=study_scale_separation", "seed=2"])  # every seed its own data and model draws
+    assert cfg.data.seed == 2 and {s.closure.seed for s in model_specs(cfg).values()} == {2}
+
     cfg = _compose(["experiment=study_sampling"])
     # Lorenz (1963) parameters: σ = 10, ρ = 28, β = 8/3 (published values)
     assert (cfg.system.sigma, cfg.system.rho, cfg.system.beta) == (10.0, 28.0, pytest.approx(8 / 3))
@@ -203,3 +206,5 @@ def test_study_presets_sweep_what_they_say():
         "flow_map_continuous": ("continuous", "FlowMapRegression"),
         "flow_map_discrete": ("discrete", "FlowMapRegression"),
     }
+    cfg = _compose(["experiment=study_sampling", "seed=1"])
+    assert cfg.data.seed == 1 and {s.closure.seed for s in model_specs(cfg).values()} == {1}
