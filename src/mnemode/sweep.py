@@ -116,10 +116,14 @@ class SweepHooks(_Callback):
                               int(hydra_cfg.job.num))
 
     def on_multirun_end(self, config: DictConfig, **kwargs: Any) -> None:
+        from .errors import MnemodeError
         from .study import read_jobs
 
         sweep_dir = Path(str(config.hydra.sweep.dir))
-        jobs = [j for j in read_jobs([sweep_dir]) if j.state != "no run"]
+        try:
+            jobs = [j for j in read_jobs([sweep_dir]) if j.state != "no run"]
+        except MnemodeError:  # no job directory at all: nothing to report
+            return
         if not jobs:
             return  # a sweep of commands that leave no run directory (generate, diagnose)
         bad = [j for j in jobs if j.state != "finished"]
