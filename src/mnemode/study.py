@@ -58,6 +58,7 @@ class JobRecord:
     overrides: dict[str, str] = field(default_factory=dict)
     models: dict[str, dict] = field(default_factory=dict)   # model -> its assessment metrics
     time_unit: str = "time units"
+    horizon: float | None = None        # forecast length: validity times are censored there
     config: dict | None = None
     overrides_recorded: bool = True     # False: inferred from how the configs differ
 
@@ -175,6 +176,7 @@ def _read_job(path: Path) -> JobRecord:
     assessment = metrics.get("assessment") or metrics
     job.models = dict(assessment.get("models") or {})
     job.time_unit = str(assessment.get("time_unit") or "time units")
+    job.horizon = _as_float(assessment.get("horizon"))
     return job
 
 
@@ -386,7 +388,7 @@ def pooled_points(jobs: list[JobRecord]) -> list[dict]:
     return points
 
 
-def _plot(points: list[dict], unit: str, out_dir: Path) -> list[Path]:
+def _plot(points: list[dict], unit: str, out_dir: Path, horizons=()) -> list[Path]:
     import matplotlib
 
     matplotlib.use("Agg")
@@ -411,6 +413,10 @@ def _plot(points: list[dict], unit: str, out_dir: Path) -> list[Path]:
             for p in line_pts:
                 seeds = [v for v in p["per_run"] if v is not None and math.isfinite(v)]
                 ax.scatter([p["x"]] * len(seeds), seeds, s=8, color=line.get_color(), alpha=0.5)
+        if metric == "validity_time":
+            for i, h in enumerate(sorted(set(horizons))):
+                ax.axhline(h, color="grey", linestyle=":", linewidth=1,
+                           label="forecast horizon (validity censored)" if i == 0 else None)
         values = list(xs.values())
         if numeric and all(v > 0 for v in values) and max(values) >= 10 * min(values):
             ax.set_xscale("log")
@@ -466,7 +472,8 @@ def summarise(paths, out_dir: str | Path | None = None, *, overwrite: bool = Fal
             old.unlink()
     points = pooled_points(jobs)
     unit = next((j.time_unit for j in jobs if j.finished and j.models), "time units")
-    figures = _plot(points, unit, out)
+    horizons = [j.horizon for j in jobs if j.finished and j.horizon is not None]
+    figures = _plot(points, unit, out, horizons)
     columns, rows = summary_table(jobs)
     write_text(csv_path, _csv_text(columns, rows))
     point_cols = ["parameter", "value", "metric", "model", "group", "centre", "low", "high", "n_runs"]
