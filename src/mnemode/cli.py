@@ -268,14 +268,14 @@ def _resume(rest: list[str]) -> None:
         else:  # one job's failure is recorded in its status.json; the other jobs go on
             try:
                 pipeline.run_pipeline(cfg, run.path, resume=True, stages=stages)
-            except MnemodeError as exc:
-                print(f"{run.path}: failed: {exc}", file=sys.stderr)
+            except Exception as exc:  # noqa: BLE001 -- run_pipeline recorded it in the job's status.json
+                print(f"{run.path}: failed: {exc or type(exc).__name__}", file=sys.stderr)
                 failed.append((run, exc))
                 continue
         _print_summary(run)
     if failed:
-        worst = max(failed, key=lambda f: f[1].exit_code)[1]
-        raise type(worst)(str(path), f"{len(failed)} of {len(runs)} jobs failed again "
+        worst = max(failed, key=lambda f: getattr(f[1], "exit_code", 1))[1]
+        raise (type(worst) if isinstance(worst, MnemodeError) else MnemodeError)(str(path), f"{len(failed)} of {len(runs)} jobs failed again "
                           f"({', '.join(r.path.name for r, _ in failed)}); each job's reason is above and in "
                           "its status.json", f"fix their cause and run `mnemode resume {path}` again, "
                           f"or see `mnemode study {path}`.")
