@@ -208,3 +208,15 @@ def test_study_presets_sweep_what_they_say():
     }
     cfg = _compose(["experiment=study_sampling", "seed=1"])
     assert cfg.data.seed == 1 and {s.closure.seed for s in model_specs(cfg).values()} == {1}
+
+
+def test_a_launcher_without_its_plugin_is_one_clear_error(monkeypatch):
+    from mnemode import sweep
+    from mnemode.configs_path import config_dir
+
+    shipped = {p.stem for p in (config_dir() / "hydra" / "launcher").glob("*.yaml")}
+    assert shipped == {"workstation", "slurm", "slurm_local"} and shipped <= set(sweep._LAUNCHER_PLUGINS)
+    sweep.check_launcher(["seed=1", "hydra/launcher=basic"])  # Hydra's own launcher needs no plugin
+    monkeypatch.setitem(sweep._LAUNCHER_PLUGINS, "workstation", ("hydra_plugins.not_installed_here", "some-plugin"))
+    with pytest.raises(ConfigError, match=r"hydra/launcher=workstation: needs .*some-plugin.*mnemode\[cluster\]"):
+        sweep.check_launcher(["hydra/launcher=workstation"])

@@ -118,6 +118,9 @@ def _hydra(command: str, rest: list[str]) -> None:
             log.error("%s", exc)
             _fail(exc)
 
+    from .sweep import check_launcher
+
+    check_launcher(rest)
     saved = sys.argv
     sys.argv = [f"mnemode {command}", *rest]
     try:

@@ -18,7 +18,7 @@ from typing import Any
 
 from omegaconf import DictConfig, OmegaConf
 
-__all__ = ["SweepHooks", "failure_recorded", "in_sweep", "job_threads", "set_threads", "usable_cores", "OVERRIDES_FILE"]
+__all__ = ["SweepHooks", "check_launcher", "failure_recorded", "in_sweep", "job_threads", "set_threads", "usable_cores", "OVERRIDES_FILE"]
 
 log = logging.getLogger("mnemode")
 
@@ -134,6 +134,37 @@ class SweepHooks(_Callback):
         if bad:
             print(f"  retry the jobs that did not finish (finished ones are skipped): mnemode resume {sweep_dir}")
             sys.exit(1)
+
+
+# shipped launcher configs (configs/hydra/launcher/) and the plugin package each needs
+_LAUNCHER_PLUGINS = {
+    "workstation": ("hydra_plugins.hydra_joblib_launcher", "hydra-joblib-launcher"),
+    "joblib": ("hydra_plugins.hydra_joblib_launcher", "hydra-joblib-launcher"),
+    "slurm": ("hydra_plugins.hydra_submitit_launcher", "hydra-submitit-launcher"),
+    "slurm_local": ("hydra_plugins.hydra_submitit_launcher", "hydra-submitit-launcher"),
+    "submitit_slurm": ("hydra_plugins.hydra_submitit_launcher", "hydra-submitit-launcher"),
+    "submitit_local": ("hydra_plugins.hydra_submitit_launcher", "hydra-submitit-launcher"),
+}
+
+
+def check_launcher(overrides: list[str]) -> None:
+    """Raise a clear error when ``hydra/launcher=NAME`` names a launcher whose plugin is not installed.
+
+    Raises:
+        ConfigError: the plugin package is missing (the fix names the pip extra).
+    """
+    import importlib.util
+
+    from .errors import ConfigError
+
+    for item in overrides:
+        key, _, name = item.partition("=")
+        if key.lstrip("+~") != "hydra/launcher" or name not in _LAUNCHER_PLUGINS:
+            continue
+        module, package = _LAUNCHER_PLUGINS[name]
+        if importlib.util.find_spec(module) is None:
+            raise ConfigError(f"hydra/launcher={name}", f"needs Hydra's {package} plugin, which is not installed",
+                              f"pip install 'mnemode[cluster]' (or pip install {package}).")
 
 
 def in_sweep() -> bool:
