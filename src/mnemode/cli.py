@@ -36,7 +36,8 @@ def _fail(exc: MnemodeError) -> None:
 def _handlers() -> dict:
     """Command name -> handler taking the rest of the command line (add a command here)."""
     table = {name: functools.partial(_hydra, name) for name in HYDRA_COMMANDS}
-    table.update(assess=_assess, export=_export, resume=_resume, rollout=_rollout, runs=_runs, correction=_correction)
+    table.update(assess=_assess, export=_export, resume=_resume, rollout=_rollout, runs=_runs, correction=_correction,
+                 study=_study)
     return table
 
 
@@ -108,12 +109,23 @@ def _hydra(command: str, rest: list[str]) -> None:
         try:
             run_dir = Path(HydraConfig.get().runtime.output_dir)
             _dispatch(command, cfg, run_dir)
-        except MnemodeError as exc:
+        except Exception as exc:
+            from .sweep import failure_recorded, in_sweep
+
+            if in_sweep():  # Hydra goes on with the other jobs
+                log.error("%s", exc, exc_info=not isinstance(exc, MnemodeError))
+                if failure_recorded(run_dir, exc):
+                    return  # in the job's status.json; the end-of-sweep report lists it and exits non-zero
+                raise  # not recorded (e.g. a refusal to write over a run): Hydra raises it when the sweep ends
+            if not isinstance(exc, MnemodeError):
+                raise
             _log_to_file(exc)
             _fail(exc)
 
     from .config_check import precheck_overrides
+    from .sweep import check_launcher
 
+    check_launcher(rest)
     precheck_overrides(command, rest)  # settings and run directory, before Hydra creates anything
     saved = sys.argv
     sys.argv = [f"mnemode {command}", *rest]
@@ -374,11 +386,24 @@ def _resume(rest: list[str]) -> None:
     from .rundir import RunDir
 
     path = Path(args.run_dir)
-    runs = [RunDir(path)] if RunDir(path).is_run() else sorted(
-        (r for r in (RunDir(p.parent) for p in path.glob("*/config.yaml")) if r.is_run()), key=lambda r: str(r.path))
-    if not runs:
-        raise MnemodeError(str(path), "holds no mnemode run (no config.yaml here or one level below)",
-                           "pass a run directory or a sweep directory.")
+    if (path / "config.yaml").exists():
+        runs = [RunDir(path)]
+    else:
+        from .study import read_jobs
+
+        try:
+            jobs = read_jobs([path])
+        except MnemodeError:
+            raise MnemodeError(str(path), "holds no mnemode run (no config.yaml here or one level below)",
+                               "pass a run directory or a sweep directory.") from None
+        for job in jobs:
+            if job.config is None:
+                print(f"{job.path}: no config.yaml, cannot be resumed ({job.reason})")
+        runs = [RunDir(j.path) for j in jobs if j.config is not None]
+        if not runs:
+            raise MnemodeError(str(path), "holds no job that started a run (no config.yaml one level below)",
+                               "run the sweep again; there is nothing here to resume.")
+    failed = []
     for run in runs:
         if run.status().get("state") == "finished":
             note = " (the overrides were not applied: a finished run has nothing left to resume)" \
@@ -390,8 +415,45 @@ def _resume(rest: list[str]) -> None:
         print(f"resuming {run.path}")
         with run.lock("resume"):
             cfg = _resume_config(run, cfg, args.overrides)
-            pipeline.run_pipeline(cfg, run.path, resume=True, stages=stages)
+            if len(runs) == 1:
+                pipeline.run_pipeline(cfg, run.path, resume=True, stages=stages)
+            else:  # one job's failure is recorded in its status.json; the other jobs go on
+                try:
+                    pipeline.run_pipeline(cfg, run.path, resume=True, stages=stages)
+                except Exception as exc:  # noqa: BLE001 -- run_pipeline recorded it in the job's status.json
+                    print(f"{run.path}: failed: {exc or type(exc).__name__}", file=sys.stderr)
+                    failed.append((run, exc))
+                    continue
         _print_summary(run)
+    if failed:
+        worst = max(failed, key=lambda f: getattr(f[1], "exit_code", 1))[1]
+        error = MnemodeError(str(path), f"{len(failed)} of {len(runs)} jobs failed again "
+                             f"({', '.join(r.path.name for r, _ in failed)}); each job's reason is above and in "
+                             "its status.json", f"fix their cause and run `mnemode resume {path}` again, "
+                             f"or see `mnemode study {path}`.")
+        error.exit_code = getattr(worst, "exit_code", error.exit_code)
+        raise error
+
+
+def _study(rest: list[str]) -> None:
+    parser = _parser("study", rest)
+    parser.add_argument("dirs", nargs="+", help="sweep directories and/or run directories")
+    parser.add_argument("--out", default=None, help="where to write (default: FIRST_DIR/study)")
+    parser.add_argument("--overwrite", action="store_true", help="replace an earlier summary there")
+    args = parser.parse_args(rest)
+    from .study import summarise
+
+    summary = summarise(args.dirs, args.out, overwrite=args.overwrite)
+    jobs = summary.jobs
+    done = sum(j.finished for j in jobs)
+    print(f"{len(jobs)} jobs: {done} finished, {len(jobs) - done} not; swept: "
+          f"{', '.join(summary.parameters) or 'nothing'}")
+    for job in jobs:
+        if not job.finished:
+            print(f"  {job.name}: {job.state}: {job.reason}")
+    print(f"table:   {summary.table_md}")
+    print(f"         {summary.table_csv}")
+    print(f"figures: {len(summary.figures)} in {summary.table_md.parent / 'figures'}")
 
 
 def _resume_config(run, cfg, overrides: list[str]):

@@ -111,6 +111,14 @@ COMMAND_DOCS: dict[str, CommandDoc] = {d.name: d for d in (
         (),
         "mnemode rollout RUN_DIR/export --history last_minutes.csv --steps 500 --out forecast.csv"),
     CommandDoc(
+        "study", "one table and plots of a sweep's (or several runs') metrics",
+        "Read a sweep directory (or any run directories) and write one table (study.csv, study.md: each "
+        "job's overrides, status and headline metrics per model) and plots of each headline metric against "
+        "each swept parameter, one line per model with its quartile band, seeds pooled and shown as dots. "
+        "Failed and unfinished jobs are listed with their reason.",
+        "mnemode study DIR [DIR ...] [--out DIR] [--overwrite]", (),
+        "mnemode study mnemode-runs/study_scale_separation/sweep_2026-12-02_10-00-00"),
+    CommandDoc(
         "correction", "read what a fitted model learned: R² against targets, equations, memory",
         "Write figures and a short report on a fitted model's learned correction into "
         "RUN_DIR/correction/<model>/: the correction along the test data against its derivative and "
