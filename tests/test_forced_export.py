@@ -29,8 +29,8 @@ import torch
 from scipy.integrate import solve_ivp
 
 from mnemode.archive import archive_problem
-from mnemode.assess.forecasts import Starts, run_forecasts
-from mnemode.assess.metrics import validity_times
+from mnemode.forecasting import Starts, run_forecasts
+from mnemode.validity import validity_times
 from mnemode.closures.base import Closure
 from mnemode.data import generate
 from mnemode.errors import CheckpointError, ConfigError, DataError
