@@ -7,7 +7,7 @@ In a config::
       nominal: {_target_: my_package.MyLoopModel, some_parameter: 1.5}
       state_names: [X, Y, Z]
       state_units: [m/s, K, K]
-      time_unit: s
+      time_unit: s                # null: 'time unit of the data'
 
 The nominal field must be an ``nn.Module`` called as ``f(t, x)`` or ``f(t, x, u)``
 (with forcing inputs ``u``) returning ``dx/dt`` with the shape of ``x``. Such a
@@ -64,12 +64,13 @@ def _build_nominal(spec: Any) -> nn.Module:
 
 
 def custom_system(nominal: nn.Module, state_names: Sequence[str], state_units: Sequence[str] | None = None,
-                  time_unit: str = "s", lyapunov_exponent: float | None = None, name: str = "custom",
+                  time_unit: str | None = None, lyapunov_exponent: float | None = None, name: str = "custom",
                   ring: bool = False) -> System:
     """A :class:`System` from a user's nominal field and the names of the observed components.
 
     Args:
         nominal: the field, or its config node ``{_target_: module.Class, ...}``.
+        time_unit: the unit of the data's time column; ``None`` says "time unit of the data".
 
     Raises:
         ConfigError: the field's module does not import (the message says how to
@@ -89,7 +90,7 @@ def custom_system(nominal: nn.Module, state_names: Sequence[str], state_units: S
         nominal.dim = len(names)
     return System(name=name, state_names=names,
                   state_units=tuple(state_units) if state_units else ("",) * len(names),
-                  time_unit=time_unit, nominal=nominal, truth=None,
+                  time_unit=time_unit or "time unit of the data", nominal=nominal, truth=None,
                   observed_index=tuple(range(len(names))), lyapunov_exponent=lyapunov_exponent,
                   ring=ring, description=f"user physics {type(nominal).__module__}.{type(nominal).__name__}")
 
