@@ -11,8 +11,8 @@ Stages, lowest first (a module may import its own stage and those below it):
     fitting     fitting
     assess      assess
     export      export, simulator
-    job         pipeline, rundir, run_index, sources, config_check: the modules that orchestrate,
-                feed, check and list runs
+    job         pipeline, rundir, run_index, sources, config_check, study, sweep: the modules that
+                orchestrate, feed, check, list and summarise runs
     reading     explain (reads a fitted run's correction)
     command     cli, __main__, command_help
 
@@ -48,6 +48,7 @@ PLACES = {
     "assess": "assess",
     "export": "export", "simulator": "export", "archive": "base",
     "pipeline": "job", "rundir": "job", "run_index": "job", "sources": "job", "config_check": "job",
+    "study": "job", "sweep": "job",
     "explain": "reading",
     "cli": "command", "__main__": "command", "command_help": "command",
 }

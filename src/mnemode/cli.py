@@ -386,7 +386,7 @@ def _resume(rest: list[str]) -> None:
     from .rundir import RunDir
 
     path = Path(args.run_dir)
-    if (path / "config.yaml").exists():
+    if RunDir(path).is_run():
         runs = [RunDir(path)]
     else:
         from .study import read_jobs
@@ -399,7 +399,7 @@ def _resume(rest: list[str]) -> None:
         for job in jobs:
             if job.config is None:
                 print(f"{job.path}: no config.yaml, cannot be resumed ({job.reason})")
-        runs = [RunDir(j.path) for j in jobs if j.config is not None]
+        runs = [RunDir(j.path) for j in jobs if j.config is not None and RunDir(j.path).is_run()]
         if not runs:
             raise MnemodeError(str(path), "holds no job that started a run (no config.yaml one level below)",
                                "run the sweep again; there is nothing here to resume.")
