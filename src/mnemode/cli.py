@@ -401,8 +401,9 @@ def _resume(rest: list[str]) -> None:
                 print(f"{job.path}: no config.yaml, cannot be resumed ({job.reason})")
         runs = [RunDir(j.path) for j in jobs if j.config is not None and RunDir(j.path).is_run()]
         if not runs:
-            raise MnemodeError(str(path), "holds no job that started a run (no config.yaml one level below)",
-                               "run the sweep again; there is nothing here to resume.")
+            raise MnemodeError(str(path), "holds no mnemode run (no run directory here or one level below)",
+                               "pass a run directory or a sweep directory; a sweep whose jobs never started "
+                               "has nothing to resume (run it again).")
     failed = []
     for run in runs:
         if run.status().get("state") == "finished":

@@ -189,13 +189,18 @@ class FileSource:
 
     def __init__(self, path=None, train=None, val=None, test=None, time_column: str = "time",
                  trajectory_column: str | None = "trajectory", state_columns: Sequence[str] | None = None,
-                 forcing_columns: Sequence[str] | None = None, column_names: Sequence[str] | None = None,
-                 units: dict | None = None, delimiter: str | None = None, comment: str = "#",
+                 forcing_columns: Sequence[str] | None = None, forcing_units: Sequence[str] | None = None,
+                 column_names: Sequence[str] | None = None, units: dict | None = None, delimiter: str | None = None, comment: str = "#",
                  grid_tolerance: float = 1e-3, min_segment_length: int = 20, chunk_length: int | None = None,
                  split: str = "trajectory", n_train: int | None = None, n_val: int | None = None,
                  n_test: int | None = None, fractions: Sequence[float] = (0.6, 0.2, 0.2), seed: int = 0,
                  run_name: str = "observations"):
         self.path, self.train, self.val, self.test = path, train, val, test
+        if forcing_units and len(forcing_units) != len(forcing_columns or []):
+            raise ConfigError("data.forcing_units", f"has {len(forcing_units)} unit(s) for "
+                              f"{len(forcing_columns or [])} forcing column(s)",
+                              "give one unit per forcing column, in the same order (or leave it empty).")
+        self.forcing_units = [str(u) for u in (forcing_units or [])]  # read by the export's manifest
         self.columns = Columns(time=str(time_column), trajectory=None if trajectory_column in (None, "", "null")
                                else str(trajectory_column),
                                states=None if state_columns is None else [str(c) for c in state_columns],
