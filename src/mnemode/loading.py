@@ -152,6 +152,21 @@ def expand_files(spec, what: str) -> list[Path]:
     return list(dict.fromkeys(out))
 
 
+def check_data_file(path) -> Path:
+    """``path`` as a ``Path``, after checking it names a non-empty file.
+
+    Raises:
+        DataError: a missing or empty file.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise DataError(str(path), "file not found", "check the path (relative paths are taken from "
+                        "the directory you ran mnemode in).")
+    if path.stat().st_size == 0:
+        raise DataError(str(path), "file is empty", "regenerate or re-export the data.")
+    return path
+
+
 def read_file(path: Path, columns: Columns, delimiter: str | None = None,
               comment: str = "#") -> tuple[list[RawTrajectory], tuple[str, ...], tuple[str, ...], tuple[str, ...]]:
     """Read one ``.csv`` or ``.npz`` file.
@@ -162,12 +177,7 @@ def read_file(path: Path, columns: Columns, delimiter: str | None = None,
     Raises:
         DataError: unreadable, empty or malformed file; a missing column.
     """
-    path = Path(path)
-    if not path.exists():
-        raise DataError(str(path), "file not found", "check the path (relative paths are taken from "
-                        "the directory you ran mnemode in).")
-    if path.stat().st_size == 0:
-        raise DataError(str(path), "file is empty", "regenerate or re-export the data.")
+    path = check_data_file(path)
     if path.suffix == ".npz":
         return _read_npz(path, columns)
     if path.suffix in (".csv", ".txt", ".tsv", ".dat"):

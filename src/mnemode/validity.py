@@ -62,16 +62,10 @@ def validity_times(forecast, truth, dt: float, gamma: float = 0.5, scale: float 
     Raises:
         ValueError: arrays that are not both ``(T, N, D)`` of one shape.
     """
-    f = np.asarray(forecast, dtype=np.float64)
-    x = np.asarray(truth, dtype=np.float64)
-    if f.shape != x.shape or f.ndim != 3:
-        raise ValueError(f"forecast {f.shape} and truth {x.shape} must both be (T, N, D)")
-    if scale is None:
-        scale = rms_scale(x)
-    err = normalised_error(f, x, scale)
+    err = _checked_errors(forecast, truth, scale)
     exceeded = err > gamma
     censored = ~exceeded.any(axis=0)
-    first = np.where(censored, x.shape[0] - 1, exceeded.argmax(axis=0))
+    first = np.where(censored, err.shape[0] - 1, exceeded.argmax(axis=0))
     return first * dt, censored
 
 
@@ -110,16 +104,19 @@ def log_error_skill(forecast, truth, gamma: float = 0.5, scale: float | None = N
         ValueError: arrays that are not both ``(T, N, D)`` of one shape, or a
             window with no sample left to score.
     """
-    f = np.asarray(forecast, dtype=np.float64)
-    x = np.asarray(truth, dtype=np.float64)
-    if f.shape != x.shape or f.ndim != 3:
-        raise ValueError(f"forecast {f.shape} and truth {x.shape} must both be (T, N, D)")
-    if scale is None:
-        scale = rms_scale(x)
-    err = normalised_error(f, x, scale)
+    err = _checked_errors(forecast, truth, scale)
     if skip_first:
         err = err[1:]
     if err.size == 0:
         raise ValueError("log_error_skill needs at least one sample after the initial state")
     ratio = np.clip(err / float(gamma), float(floor), 1.0)
     return float(-np.mean(np.log(ratio)))
+
+
+def _checked_errors(forecast, truth, scale) -> np.ndarray:
+    """``(T, N)`` normalised errors of ``(T, N, D)`` forecasts (``scale``: RMS of the truth if ``None``)."""
+    f = np.asarray(forecast, dtype=np.float64)
+    x = np.asarray(truth, dtype=np.float64)
+    if f.shape != x.shape or f.ndim != 3:
+        raise ValueError(f"forecast {f.shape} and truth {x.shape} must both be (T, N, D)")
+    return normalised_error(f, x, rms_scale(x) if scale is None else scale)
