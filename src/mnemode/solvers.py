@@ -19,7 +19,7 @@ from typing import Callable, Sequence
 import torch
 from torch import nn
 
-from .errors import MnemodeError
+from .errors import ConfigError, MnemodeError
 
 __all__ = ["Solver", "Euler", "RK4", "Adaptive", "FlowMap", "substeps_for", "CountingField",
            "StepBudgetExceeded"]
@@ -198,6 +198,9 @@ class Adaptive(Solver):
             instead of running forever.
         adjoint: backpropagate with the adjoint method (memory O(1) in the number
             of steps) instead of directly through the solver's operations.
+        compile: must be ``False``; accepted so that one solver config (with its
+            ``compile`` key) serves every solver. torchdiffeq's step-size control
+            synchronises with the host every step and is not compiled.
 
     Note that torchdiffeq uses one error norm for the whole batch: one stiff
     trajectory makes every trajectory in the batch take small steps.
@@ -206,7 +209,10 @@ class Adaptive(Solver):
     METHODS = ("dopri5", "dopri8", "bosh3", "fehlberg2", "adaptive_heun")
 
     def __init__(self, method: str = "dopri5", rtol: float = 1e-7, atol: float = 1e-9,
-                 max_steps: int = 100_000, adjoint: bool = False):
+                 max_steps: int = 100_000, adjoint: bool = False, compile: bool = False):
+        if compile:
+            raise ConfigError("solver.compile", "is true for an adaptive solver, which has no compiled path",
+                              "set solver.compile=false, or use a fixed-step solver (RK4, Euler) to compile.")
         if method not in self.METHODS:
             raise ValueError(f"adaptive method {method!r} is not one of {self.METHODS}")
         self.method, self.rtol, self.atol = method, float(rtol), float(atol)
