@@ -9,12 +9,14 @@ backward, while the Python loop over steps stays where it is (so output times,
 sub-steps, warm-ups and truncated backpropagation behave exactly as in the eager
 solver).
 
-Shapes and times are compiled as symbols (``dynamic=True``): the step time ``t``
-and the observation times of a warm-up change every interval and the batch
-changes between fitting and validation, and each of these would otherwise force a
-recompilation. The step size ``h`` takes a handful of values in a run and is
-compiled in symbolically as well. One graph is built per kind of field (model,
-model driven by a forcing, warm-up drive), per gradient mode and per dtype.
+Times and shapes must not force recompilation: the step time ``t`` and the
+observation times of a warm-up change every interval and the batch changes
+between fitting and validation. The step time is passed to the graph as a 0-d
+float64 tensor (so the field receives ``t`` as a tensor on this path), and
+shapes and the remaining Python floats are compiled as symbols
+(``dynamic=True``). One graph is built per kind of field (model, model driven by
+a forcing, warm-up drive), per gradient mode (and whether the state entering it
+carries a gradient) and per dtype.
 
 Fallback: when ``torch.compile`` is unavailable (no C++ compiler for inductor,
 an unsupported Python) or a graph fails to compile or run, the step is
@@ -82,7 +84,9 @@ class CompiledStep:
         if self.failed is not None or compile_disabled():
             return self.step(f, t, y, h)
         try:
-            return self._build()(f, t, y, h)
+            # t enters the graph as a 0-d float64 tensor: a Python float that the field does not use (an
+            # autonomous field) is specialised by the compiler, which then recompiles at every new t
+            return self._build()(f, torch.as_tensor(t, dtype=torch.float64), y, h)
         except Exception as exc:  # the compiler raises many kinds; decide below whose error it was
             out = self.step(f, t, y, h)  # an error of the field itself is raised here, as in the eager solver
             first = str(exc).strip().splitlines()[0][:200] if str(exc).strip() else ""
