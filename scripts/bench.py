@@ -267,14 +267,16 @@ def bench_fit(args, out: dict) -> None:
     system, model = demo_model()
     q = args.quick
     n_warm, n_grad, n_f = (50, 25, 50) if q else (500, 100, 200)
-    cases.append(("demo (hidden 18, batch 32)", model, demo_history(system, 32, n_warm + n_f + 1, dt),
-                  n_warm, n_grad, n_f))
+    if "demo" in args.fit_cases:
+        cases.append(("demo (hidden 18, batch 32)", model, demo_history(system, 32, n_warm + n_f + 1, dt),
+                      n_warm, n_grad, n_f))
     big = large_model()
     bw, bg, bf = (10, 5, 10) if q else (50, 25, 100)
     gen = torch.Generator().manual_seed(1)
     hist = torch.randn(bw + bf + 2, 512, 36, dtype=torch.float64, generator=gen)  # observations: any bounded data
     hist = hist.cumsum(0) * 0.05 + 2.0
-    cases.append(("large (state 36, hidden 64, batch 512)", big, hist, bw, bg, bf))
+    if "large" in args.fit_cases:
+        cases.append(("large (state 36, hidden 64, batch 512)", big, hist, bw, bg, bf))
     res = {}
     for name, m, history, nw, ng, nf in cases:
         unroll, step, compiled = _fit_workloads(m, history, nw, ng, nf, dt, args.compile)
@@ -539,6 +541,8 @@ def main(argv=None) -> int:
     p.add_argument("--threads", type=int, default=1)
     p.add_argument("--no-compile", dest="compile", action="store_false", help="skip the compiled variants")
     p.add_argument("--run-preset", default="tiny", help="experiment preset for the run section")
+    p.add_argument("--fit-cases", nargs="+", choices=("demo", "large"), default=("demo", "large"),
+                   help="models of the fit section")
     p.add_argument("--json", default="bench.json", help="where to write the results")
     p.add_argument("--memory-child", help=argparse.SUPPRESS)
     p.add_argument("--memory-steps", type=int, default=10, help=argparse.SUPPRESS)

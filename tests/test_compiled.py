@@ -225,3 +225,17 @@ def test_solver_config_switches_compilation():
     assert isinstance(adaptive, Adaptive)
     with pytest.raises(ConfigError, match="compile"):
         Adaptive(compile=True)
+
+
+def test_each_compiled_step_has_its_own_code_object(monkeypatch):
+    # the compiler's graph cache and recompilation limit are per code object; solvers must not share one
+    seen = []
+    monkeypatch.setattr(compiled_mod.torch, "compile", lambda fn, **kw: seen.append(fn) or fn)
+    field = Linear(np.array([[0.0, 1.0], [-4.0, 0.0]]))
+    y = torch.tensor([[1.0, 0.0]], dtype=torch.float64)
+    a, b = RK4(0.05, compile=True), RK4(0.05, compile=True)
+    ya, yb = a.advance(field, 0.0, y, 0.1), b.advance(field, 0.0, y, 0.1)
+    assert torch.equal(ya, yb) and torch.equal(ya, RK4(0.05).advance(field, 0.0, y, 0.1))
+    codes = [fn.__func__.__code__ for fn in seen]  # code objects compare by value: check identity
+    assert len(seen) == 2 and codes[0] is not codes[1]
+    assert all(c is not RK4.one_step.__code__ for c in codes)

@@ -38,6 +38,7 @@ References:
 from __future__ import annotations
 
 import os
+import types
 import warnings
 from typing import Callable
 
@@ -59,6 +60,24 @@ def compile_disabled() -> bool:
     return os.environ.get(DISABLE_ENV, "").strip() not in ("", "0")
 
 
+def _own_code(fn: Callable) -> Callable:
+    """``fn`` rebuilt on a copy of its code object.
+
+    The compiler keeps its graphs, and its limit on how many it builds, per code
+    object: every solver of a class shares ``one_step``'s code, so without a copy
+    the solvers of one process (fit, validation, truth, simulator) would share a
+    budget of a handful of graphs and the later ones would silently run eagerly.
+    """
+    bound_to = getattr(fn, "__self__", None)
+    func = getattr(fn, "__func__", fn)
+    if not isinstance(func, types.FunctionType):
+        return fn
+    clone = types.FunctionType(func.__code__.replace(), func.__globals__, func.__name__, func.__defaults__,
+                               func.__closure__)
+    clone.__kwdefaults__ = func.__kwdefaults__
+    return clone if bound_to is None else types.MethodType(clone, bound_to)
+
+
 class CompiledStep:
     """A solver's one-step map ``(f, t, y, h) ↦ y_next`` run through ``torch.compile``, eager on failure.
 
@@ -77,7 +96,7 @@ class CompiledStep:
 
     def _build(self):
         if self._compiled is None:
-            self._compiled = torch.compile(self.step, dynamic=True, fullgraph=False)
+            self._compiled = torch.compile(_own_code(self.step), dynamic=True, fullgraph=False)
         return self._compiled
 
     def __call__(self, f, t, y: torch.Tensor, h: float) -> torch.Tensor:
