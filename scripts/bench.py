@@ -492,6 +492,28 @@ def _seconds_in(obj, prefix=""):
     return found
 
 
+def _stage_wall(log_text: str) -> dict:
+    """Wall seconds of each stage of a run, from the timestamps of its log (data, fit, assess, export)."""
+    import re
+    from datetime import datetime
+
+    stamps = []
+    for line in log_text.splitlines():
+        m = re.match(r"\[(\d{4}-\d\d-\d\d \d\d:\d\d:\d\d,\d+) \w+\] (.*)", line)
+        if m:
+            stamps.append((datetime.strptime(m.group(1), "%Y-%m-%d %H:%M:%S,%f"), m.group(2)))
+    if not stamps:
+        return {}
+    starts = {"data": stamps[0][0]}
+    for when, msg in stamps:
+        for stage, prefix in (("fit", "fitting "), ("assess", "assessing "), ("export", "exporting ")):
+            if msg.startswith(prefix) and stage not in starts:
+                starts[stage] = when
+    order = [k for k in ("data", "fit", "assess", "export") if k in starts]
+    ends = [starts[k] for k in order[1:]] + [stamps[-1][0]]
+    return {k: (e - starts[k]).total_seconds() for k, e in zip(order, ends)}
+
+
 def bench_run(args, out: dict) -> None:
     with tempfile.TemporaryDirectory() as tmp:
         env = {**os.environ, "MNEMODE_RUNS": tmp, "OMP_NUM_THREADS": str(args.threads)}
@@ -504,7 +526,12 @@ def bench_run(args, out: dict) -> None:
             res["stages"] = _seconds_in(json.loads(metrics.read_text()))
         else:
             res["stderr_tail"] = proc.stderr[-1500:]
+        logfile = Path(tmp) / "run" / "mnemode.log"
+        if logfile.is_file():
+            res["stage_wall"] = _stage_wall(logfile.read_text())
     print(f"\nmnemode run experiment={args.run_preset}: {wall:.1f} s wall (exit {proc.returncode})")
+    for k, v in res.get("stage_wall", {}).items():
+        print(f"  stage {k}: {v:.1f} s (from the run's log)")
     for k, v in res.get("stages", {}).items():
         print(f"  {k}: {v:.1f} s")
     out["run"] = res
