@@ -518,9 +518,10 @@ def bench_run(args, out: dict) -> None:
     with tempfile.TemporaryDirectory() as tmp:
         env = {**os.environ, "MNEMODE_RUNS": tmp, "OMP_NUM_THREADS": str(args.threads)}
         cmd = [sys.executable, "-m", "mnemode", "run", f"experiment={args.run_preset}", "progress=false",
-               f"hydra.run.dir={tmp}/run"]
+               f"hydra.run.dir={tmp}/run", *args.run_overrides]
         proc, wall = timed(lambda: subprocess.run(cmd, capture_output=True, text=True, env=env))
-        res = {"preset": args.run_preset, "wall_seconds": wall, "returncode": proc.returncode}
+        res = {"preset": args.run_preset, "overrides": list(args.run_overrides), "wall_seconds": wall,
+               "returncode": proc.returncode}
         metrics = Path(tmp) / "run" / "metrics.json"
         if metrics.is_file():
             res["stages"] = _seconds_in(json.loads(metrics.read_text()))
@@ -529,7 +530,8 @@ def bench_run(args, out: dict) -> None:
         logfile = Path(tmp) / "run" / "mnemode.log"
         if logfile.is_file():
             res["stage_wall"] = _stage_wall(logfile.read_text())
-    print(f"\nmnemode run experiment={args.run_preset}: {wall:.1f} s wall (exit {proc.returncode})")
+    print(f"\nmnemode run experiment={args.run_preset} {' '.join(args.run_overrides)}: {wall:.1f} s wall "
+          f"(exit {proc.returncode})")
     for k, v in res.get("stage_wall", {}).items():
         print(f"  stage {k}: {v:.1f} s (from the run's log)")
     for k, v in res.get("stages", {}).items():
@@ -568,6 +570,8 @@ def main(argv=None) -> int:
     p.add_argument("--threads", type=int, default=1)
     p.add_argument("--no-compile", dest="compile", action="store_false", help="skip the compiled variants")
     p.add_argument("--run-preset", default="tiny", help="experiment preset for the run section")
+    p.add_argument("--run-overrides", nargs="*", default=[], help="further overrides of the run section, "
+                   "e.g. solver.compile=true")
     p.add_argument("--fit-cases", nargs="+", choices=("demo", "large"), default=("demo", "large"),
                    help="models of the fit section")
     p.add_argument("--json", default="bench.json", help="where to write the results")
