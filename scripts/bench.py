@@ -1,0 +1,606 @@
+"""mnemode's speed and memory benchmark: ratios measured side by side in one run.
+
+Sections (``--only`` picks some; all by default):
+
+``fit``       Fitting throughput, forward + backward: (a) a forecast unroll of
+              ``F`` RK4 steps; (b) a whole fitting step (warm-up on observations,
+              the last part differentiated, then the forecast). mnemode's RK4
+              (eager, and compiled with ``compile=True`` unless ``--no-compile``)
+              against torchdiffeq's ``odeint(method='rk4')`` with the same explicit
+              step and against a plain eager Python loop of the textbook RK4. On the
+              demo model (thermosyphon physics + leaky memory closure, hidden 18,
+              batch 32, step 0.02) and a large case (Lorenz-96 physics with 36
+              sites + a coupled leaky closure with hidden 64, batch 512). Each row
+              also gives the fraction of the machine's measured matrix-product peak
+              (matrix-product FLOPs counted by ``torch.utils.flop_counter``).
+``export``    The exported simulator (``export_simulator`` → ``load_simulator``,
+              ``Simulator.rollout``) against the eager model (``simulate``) for
+              ``N`` observation steps at batch 1 and 64, and, where a C++ compiler
+              is present, the ahead-of-time package of the same program
+              (:func:`mnemode.export_aot.compile_program`) with its parity.
+``truth``     Cost of a forecast: the corrected simulator at its Δt against the
+              truth at its accuracy-matched RK4 step over the same horizon, both
+              run the same way (both eager; both compiled with ``compile=True``
+              too unless ``--no-compile``): the demo at τ = 0.01 and two-scale
+              Lorenz-96 (c = 10).
+``memory``    Peak resident memory (``ru_maxrss``) of a short trajectory fit at 1×
+              and 10× the training data length, one subprocess per measurement.
+``run``       Wall time of ``mnemode run`` (the ``tiny`` preset; ``--run-preset``)
+              and of its fit stages from the run's ``metrics.json``; full mode only.
+``startup``   ``mnemode --help`` against ``python -c "import torch"``.
+
+Timing: one thread by default (``--threads``), one warm-up call, then the fastest
+of ``--repeats`` runs, the variants compared in a row interleaved so all see the
+same load. Only ratios are meaningful on a shared machine; absolute times are
+printed for orientation. Results go to ``--json`` (default ``bench.json``) with
+the machine, the torch version and the thread count.
+
+``--quick`` (under about two minutes on an idle 2-core machine) shortens every
+workload, skips compilation and the ``run`` section; the full mode runs them all.
+Compiling takes minutes on a loaded machine; its time is reported separately.
+
+Usage::
+
+    python scripts/bench.py --quick
+    python scripts/bench.py --only fit export --threads 1
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import platform
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import torch
+
+SECTIONS = ("fit", "export", "truth", "memory", "run", "startup")
+
+# Accuracy-matched truth steps: the largest RK4 step keeping the truth within 1e-3 relative error of
+# DOP853 (rtol 1e-10) over 100 time units, measured once on this kind of machine (not re-derived here).
+TRUTH_STEP = {"demo_tau_0.01": 1.0 / 60.0, "lorenz96_two_scale": 5e-4}
+
+
+# -- timing ------------------------------------------------------------------------------
+
+def race(fns: dict, repeats: int) -> dict:
+    """Fastest wall time of each callable; one warm-up call each, then runs interleaved."""
+    for fn in fns.values():
+        fn()
+    best = {k: math.inf for k in fns}
+    for _ in range(repeats):
+        for k, fn in fns.items():
+            t0 = time.perf_counter()
+            fn()
+            best[k] = min(best[k], time.perf_counter() - t0)
+    return best
+
+
+def timed(fn):
+    t0 = time.perf_counter()
+    out = fn()
+    return out, time.perf_counter() - t0
+
+
+def matmul_peak(dtype=torch.float64, n: int = 512, repeats: int = 5) -> float:
+    """Measured matrix-product rate (FLOP/s) of this process's threads: ``2 n³`` per product."""
+    a = torch.randn(n, n, dtype=dtype)
+    b = torch.randn(n, n, dtype=dtype)
+    best = race({"mm": lambda: a @ b}, repeats)["mm"]
+    return 2.0 * n ** 3 / best
+
+
+def mm_flops(fn) -> int:
+    """Matrix-product FLOPs of one call of ``fn`` (forward and backward), by torch's counter."""
+    from torch.utils.flop_counter import FlopCounterMode
+
+    counter = FlopCounterMode(display=False)
+    with counter:
+        fn()
+    return int(counter.get_total_flops())
+
+
+def row(name: str, seconds: float, base: float | None = None, flops: int | None = None, peak: float | None = None):
+    r = {"seconds": seconds}
+    if base is not None:
+        r["speedup_vs_base"] = base / seconds
+    if flops is not None and peak:
+        r["peak_fraction"] = flops / seconds / peak
+    return r
+
+
+def print_table(title: str, rows: dict, base_name: str) -> None:
+    print(f"\n{title}")
+    print(f"  {'variant':<38} {'seconds':>9} {'× ' + base_name:>16} {'peak frac':>10}")
+    for name, r in rows.items():
+        sp = r.get("speedup_vs_base")
+        pf = r.get("peak_fraction")
+        print(f"  {name:<38} {r['seconds']:>9.4f} {'' if sp is None else f'{sp:.2f}':>16} "
+              f"{'' if pf is None else f'{pf:.2e}':>10}")
+
+
+# -- models -----------------------------------------------------------------------------
+
+def demo_model(dtype=torch.float64):
+    from mnemode.pipeline import build_model, compose_config, make_system, model_specs
+
+    cfg = compose_config([])
+    system = make_system(cfg)
+    model = build_model(model_specs(cfg)[str(cfg.model.name)], system, float(cfg.data.dt), dtype)
+    return system, model
+
+
+def demo_history(system, batch: int, n_obs: int, dt: float = 0.02, dtype=torch.float64) -> torch.Tensor:
+    """Observed truth ``(n_obs + 1, batch, dim)`` on the attractor (spun up for 10 time units)."""
+    from mnemode.solvers import RK4
+
+    gen = torch.Generator().manual_seed(0)
+    z = system.random_truth_states(batch, gen, torch.float64)
+    with torch.no_grad():
+        z = RK4(0.01).advance(system.truth, 0.0, z, 10.0)
+        traj = RK4(0.005).unroll(system.truth, z, 0.0, dt, n_obs)
+    return system.observe(traj).to(dtype)
+
+
+def large_model(dtype=torch.float64):
+    """Lorenz-96 physics on 36 sites with a coupled leaky memory closure (hidden 64)."""
+    from mnemode.closures import RecurrentClosure
+    from mnemode.hybrid import HybridField
+    from mnemode.systems.lorenz96 import Lorenz96Field
+
+    previous = torch.get_default_dtype()
+    torch.set_default_dtype(dtype)
+    try:
+        closure = RecurrentClosure(36, hidden_size=64, form="leaky", coupling=True, seed=0)
+    finally:
+        torch.set_default_dtype(previous)
+    return HybridField(Lorenz96Field(36, 8.0), closure, 36).to(dtype)
+
+
+# -- fit ----------------------------------------------------------------------------------
+
+def _textbook_rk4_unroll(f, y0, dt, n):
+    ys, y = [y0], y0
+    for i in range(n):
+        t = i * dt
+        k1 = f(t, y)
+        k2 = f(t + dt / 2, y + dt / 2 * k1)
+        k3 = f(t + dt / 2, y + dt / 2 * k2)
+        k4 = f(t + dt, y + dt * k3)
+        y = y + dt / 6 * (k1 + 2 * k2 + 2 * k3 + k4)
+        ys.append(y)
+    return torch.stack(ys)
+
+
+def _torchdiffeq_unroll(f, y0, dt, n):
+    import torchdiffeq
+
+    t = torch.arange(n + 1, dtype=y0.dtype) * dt
+    return torchdiffeq.odeint(f, y0, t, method="rk4", options={"step_size": dt})
+
+
+def _fit_workloads(model, history, n_warm, n_grad, n_f, dt, compile_too: bool):
+    """Callables doing forward + backward of (a) the forecast alone and (b) warm-up + forecast."""
+    from mnemode.hybrid import _ObservedDriving, simulate, warm_up
+    from mnemode.solvers import RK4
+
+    params = [p for p in model.parameters() if p.requires_grad]
+    x0 = history[n_warm]
+    target = history[n_warm + 1: n_warm + 1 + n_f]
+    r_init = model.closure.initial_hidden(x0.shape[:-1], x0.dtype)
+    s0 = torch.cat((x0, r_init), -1)
+
+    def backward(xs):
+        loss = (xs[1:, ..., : model.dim] - target).square().mean()
+        torch.autograd.grad(loss, params)
+
+    unroll = {
+        "mnemode RK4 (eager)": lambda: backward(RK4(dt).unroll(model, s0, 0.0, dt, n_f)),
+        "torchdiffeq rk4 (same step)": lambda: backward(_torchdiffeq_unroll(model, s0, dt, n_f)),
+        "plain eager loop (textbook RK4)": lambda: backward(_textbook_rk4_unroll(model, s0, dt, n_f)),
+    }
+    compiled = RK4(dt, compile=True)
+    if compile_too:
+        unroll["mnemode RK4 (compile=True)"] = lambda: backward(compiled.unroll(model, s0, 0.0, dt, n_f))
+
+    def fit_step(solver):
+        n_free = n_warm - n_grad
+        with torch.no_grad():
+            r = warm_up(model, history[: n_free + 1], dt, solver)
+        r = warm_up(model, history[n_free: n_warm + 1], dt, solver, r0=r, t0=n_free * dt)
+        backward(torch.cat((x0[None], simulate(model, x0, n_f, dt, solver, r0=r, t0=n_warm * dt)[1:])))
+
+    def fit_step_torchdiffeq():
+        import torchdiffeq
+
+        n_free = n_warm - n_grad
+        closure = model.closure
+
+        def interval(i, r):
+            drive = _ObservedDriving(closure, history[i], history[i + 1], i * dt, dt, None)
+            t = torch.tensor([i * dt, (i + 1) * dt], dtype=history.dtype)
+            return torchdiffeq.odeint(drive, r, t, method="rk4", options={"step_size": dt})[-1]
+
+        r = r_init
+        with torch.no_grad():
+            for i in range(n_free):
+                r = interval(i, r)
+        for i in range(n_free, n_warm):
+            r = interval(i, r)
+        s = torch.cat((x0, r), -1)
+        backward(_torchdiffeq_unroll(model, s, dt, n_f))
+
+    def fit_step_exact(solver):
+        # warm-up by the leaky hidden field's exact stepping (closure.exact_warm_up), forecast by the solver
+        n_free = n_warm - n_grad
+        closure = model.closure
+        with torch.no_grad():
+            r = closure.exact_warm_up(history[: n_free + 1], dt)
+        r = closure.exact_warm_up(history[n_free: n_warm + 1], dt, r0=r)
+        backward(torch.cat((x0[None], simulate(model, x0, n_f, dt, solver, r0=r, t0=n_warm * dt)[1:])))
+
+    step = {"mnemode RK4 (eager)": lambda: fit_step(RK4(dt)),
+            "torchdiffeq rk4 (same step)": fit_step_torchdiffeq}
+    if compile_too:
+        step["mnemode RK4 (compile=True)"] = lambda: fit_step(compiled)
+    if getattr(model.closure, "form", None) == "leaky":
+        step["exact warm-up + RK4 (eager)"] = lambda: fit_step_exact(RK4(dt))
+        if compile_too:
+            step["exact warm-up + RK4 (compile=True)"] = lambda: fit_step_exact(compiled)
+    return unroll, step, compiled
+
+
+def bench_fit(args, out: dict) -> None:
+    peak = matmul_peak()
+    out["matmul_peak_gflops"] = peak / 1e9
+    print(f"\nmeasured float64 matrix-product peak: {peak / 1e9:.2f} GFLOP/s ({torch.get_num_threads()} thread(s))")
+    dt = 0.02
+    cases = []
+    system, model = demo_model()
+    q = args.quick
+    n_warm, n_grad, n_f = (50, 25, 50) if q else (500, 100, 200)
+    if "demo" in args.fit_cases:
+        cases.append(("demo (hidden 18, batch 32)", model, demo_history(system, 32, n_warm + n_f + 1, dt),
+                      n_warm, n_grad, n_f))
+    big = large_model()
+    bw, bg, bf = (10, 5, 10) if q else (50, 25, 100)
+    gen = torch.Generator().manual_seed(1)
+    hist = torch.randn(bw + bf + 2, 512, 36, dtype=torch.float64, generator=gen)  # observations: any bounded data
+    hist = hist.cumsum(0) * 0.05 + 2.0
+    if "large" in args.fit_cases:
+        cases.append(("large (state 36, hidden 64, batch 512)", big, hist, bw, bg, bf))
+    res = {}
+    for name, m, history, nw, ng, nf in cases:
+        unroll, step, compiled = _fit_workloads(m, history, nw, ng, nf, dt, args.compile)
+        compile_s = None
+        if args.compile:
+            _, compile_s = timed(unroll["mnemode RK4 (compile=True)"])  # first call compiles forward + backward
+            _, s2 = timed(step["mnemode RK4 (compile=True)"])           # warm-up graphs (no-grad and grad)
+            compile_s += s2
+        flops_u = mm_flops(unroll["mnemode RK4 (eager)"])
+        flops_s = mm_flops(step["mnemode RK4 (eager)"])
+        tu = race(unroll, args.repeats)
+        ts = race(step, max(1, args.repeats // 2) if not q else args.repeats)
+        base = "torchdiffeq rk4 (same step)"
+        rows_u = {k: row(k, v, tu[base], flops_u, peak) for k, v in tu.items()}
+        rows_s = {k: row(k, v, ts[base], flops_s, peak) for k, v in ts.items()}
+        print_table(f"fit, {name}: forecast unroll of {nf} RK4 steps, forward + backward", rows_u, "torchdiffeq")
+        print_table(f"fit, {name}: fitting step = warm-up {nw} intervals ({ng} differentiated) + forecast {nf}, "
+                    f"forward + backward", rows_s, "torchdiffeq")
+        if compile_s is not None:
+            failed = compiled._compiled.failed if compiled._compiled is not None else None
+            print(f"  compilation (first calls): {compile_s:.1f} s{'' if failed is None else '; FELL BACK: ' + failed}")
+        res[name] = {"unroll": rows_u, "fit_step": rows_s, "compile_seconds": compile_s,
+                     "sizes": {"warm_up": nw, "warm_up_grad": ng, "forecast": nf}}
+    out["fit"] = res
+
+
+# -- export --------------------------------------------------------------------------------
+
+def bench_export(args, out: dict) -> None:
+    from mnemode.export import export_simulator
+    from mnemode.export_aot import compile_program, cxx_compiler, load_compiled
+    from mnemode.hybrid import simulate
+    from mnemode.simulator import load_simulator
+    from mnemode.solvers import RK4
+
+    system, model = demo_model()
+    dt, n = 0.02, (200 if args.quick else 1000)
+    hist = demo_history(system, 64, 10, dt)
+    env = {name: [float(hist[..., i].min()) - 5, float(hist[..., i].max()) + 5]
+           for i, name in enumerate(system.state_names)}
+    res = {}
+    with tempfile.TemporaryDirectory() as tmp:
+        d = Path(tmp) / "export"
+        _, export_s = timed(lambda: export_simulator(
+            model, d, dt=dt, solver=RK4(dt), state_names=system.state_names, state_units=system.state_units,
+            warm_up_steps=10, envelope=env, parity_steps=50, check_float32=False))
+        res["export_seconds"] = export_s
+        print(f"\nexport: export_simulator took {export_s:.1f} s")
+        sim = load_simulator(d, on_envelope="ignore")
+        runner, aot = None, None
+        if not args.quick and args.compile:
+            if cxx_compiler() is None:
+                print("  no C++ compiler: no ahead-of-time package")
+            else:
+                s_ex = torch.cat((hist[-1], model.closure.initial_hidden((64,), torch.float64)), -1)
+                aot = compile_program(d / "simulator.pt2", Path(tmp) / "simulator_aoti.pt2", (s_ex,))
+                res["aot"] = {k: v for k, v in aot.items() if k != "path"}
+                print(f"  ahead-of-time package: kind {aot['kind']}, {aot['seconds']:.1f} s, parity {aot['parity']}"
+                      + (f" ({aot['reason']})" if aot["reason"] else ""))
+                runner = load_compiled(aot["path"], aot["kind"])
+        for batch in (1, 64):
+            x0 = hist[-1, :batch].contiguous()
+            r0 = model.closure.initial_hidden((batch,), torch.float64)
+
+            def eager():
+                with torch.no_grad():
+                    return simulate(model, x0, n, dt, RK4(dt), r0=r0)
+
+            fns = {"eager model (simulate)": eager,
+                   "exported .pt2 (Simulator.rollout)": lambda: sim.rollout(x0, n, r0=r0)}
+            if runner is not None:
+                s0 = torch.cat((x0, r0), -1)
+
+                def aot_loop():
+                    s = s0
+                    with torch.no_grad():
+                        for _ in range(n):
+                            s = runner(s)
+                    return s
+                fns[f"AOT package ({aot['kind']}) loop"] = aot_loop
+            t = race(fns, args.repeats)
+            rows = {k: row(k, v, t["eager model (simulate)"]) for k, v in t.items()}
+            print_table(f"export: {n} observation steps at batch {batch}", rows, "eager")
+            res[f"batch_{batch}"] = rows
+    out["export"] = res
+
+
+# -- truth vs corrected simulator -------------------------------------------------------------
+
+def _truth_case(overrides, model_name, truth_step, horizon, batches, args):
+    from mnemode.pipeline import build_model, compose_config, make_system, model_specs
+    from mnemode.solvers import RK4
+
+    cfg = compose_config(overrides)
+    system = make_system(cfg)
+    dt = float(cfg.data.dt)
+    model = build_model(model_specs(cfg)[model_name], system, dt, torch.float64)
+    sim_step = float(cfg.solver.step)
+    gen = torch.Generator().manual_seed(0)
+    rows = {}
+    for batch in batches:
+        z0 = system.random_truth_states(batch, gen, torch.float64)
+        x0 = system.observe(z0)
+        n_sim = int(round(horizon / dt))
+        n_truth = int(round(horizon / truth_step))
+        fns = {}
+        for label, comp in (("eager", False), ("compiled", True)):
+            if comp and not args.compile:
+                continue
+            sim_solver, truth_solver = RK4(sim_step, compile=comp), RK4(truth_step, compile=comp)
+
+            def run_sim(s=sim_solver):
+                with torch.no_grad():
+                    return s.unroll(model, x0, 0.0, dt, n_sim)
+
+            def run_truth(s=truth_solver):
+                with torch.no_grad():
+                    return s.unroll(system.truth, z0, 0.0, truth_step, n_truth)
+            fns[f"simulator ({label})"] = run_sim
+            fns[f"truth ({label})"] = run_truth
+        t = race(fns, args.repeats)
+        r = {"seconds": t, "truth_over_simulator": {
+            label: t[f"truth ({label})"] / t[f"simulator ({label})"] for label in ("eager", "compiled")
+            if f"truth ({label})" in t}}
+        rows[f"batch_{batch}"] = r
+        ratios = ", ".join(f"{k} {v:.2f}×" for k, v in r["truth_over_simulator"].items())
+        print(f"  batch {batch:>3}: simulator Δt {dt} (step {sim_step}) {n_sim} steps vs truth step {truth_step:.3g} "
+              f"{n_truth} steps; truth/simulator cost: {ratios}")
+    return rows
+
+
+def bench_truth(args, out: dict) -> None:
+    q = args.quick
+    print("\ntruth vs corrected simulator, same horizon, both run the same way (untrained closures: cost only)")
+    print(f" demo at τ = 0.01 (memoryless regime), horizon {2.0 if q else 20.0}:")
+    demo = _truth_case(["experiment=memoryless_regime"], "memoryless", TRUTH_STEP["demo_tau_0.01"],
+                       2.0 if q else 20.0, (1, 64), args)
+    print(f" Lorenz-96 two-scale (c = 10), horizon {0.1 if q else 1.0}:")
+    l96 = _truth_case(["experiment=lorenz96_two_scale"], "memoryless", TRUTH_STEP["lorenz96_two_scale"],
+                      0.1 if q else 1.0, (1, 64), args)
+    out["truth"] = {"demo_tau_0.01": demo, "lorenz96_two_scale": l96, "truth_steps": TRUTH_STEP}
+
+
+# -- memory -------------------------------------------------------------------------------------
+
+def _memory_child(data_path: str, steps: int) -> None:
+    """Run in a subprocess: a short trajectory fit on the saved data; prints JSON with ru_maxrss (KiB)."""
+    from mnemode.data import TrajectorySet
+    from mnemode.fitting import FitContext, TrajectoryFit
+    from mnemode.solvers import RK4
+
+    torch.set_num_threads(1)
+    system, model = demo_model()
+    z = np.load(data_path)
+    train = TrajectorySet(z["times"], z["states"], system.state_names)
+    before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    fitter = TrajectoryFit(steps=steps, batch_size=32, val_every=10 ** 6, val_windows=8, val_horizon=2.0,
+                           checkpoint_every=10 ** 6, horizon=(0.5, 1.0))
+    fitter.fit(model, train, None, FitContext(solver=RK4(0.02), warm_up=10.0))
+    after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    print(json.dumps({"before_fit_kib": before, "peak_kib": after}))
+
+
+def bench_memory(args, out: dict) -> None:
+    from mnemode.solvers import RK4
+
+    system, _ = demo_model()
+    n_traj, duration, dt = 10, 100.0, 0.02
+    n = int(duration / dt)
+    gen = torch.Generator().manual_seed(0)
+    with torch.no_grad():
+        z = RK4(0.01).advance(system.truth, 0.0, system.random_truth_states(n_traj, gen), 10.0)
+        traj = system.observe(RK4(0.01).unroll(system.truth, z, 0.0, dt, n)).numpy()
+    res = {}
+    with tempfile.TemporaryDirectory() as tmp:
+        for factor in (1, 10):
+            # 10×: the same trajectories continued by time-reversed copies (bounded, continuous at the joins)
+            pieces = [traj if k % 2 == 0 else traj[::-1] for k in range(factor)]
+            states = np.concatenate([pieces[0]] + [p[1:] for p in pieces[1:]])
+            times = np.arange(states.shape[0]) * dt
+            path = Path(tmp) / f"data_{factor}.npz"
+            np.savez(path, times=times, states=states)
+            cmd = [sys.executable, __file__, "--memory-child", str(path), "--memory-steps", "3" if args.quick else "10"]
+            proc = subprocess.run(cmd, capture_output=True, text=True, env={**os.environ, "OMP_NUM_THREADS": "1"})
+            if proc.returncode != 0:
+                raise RuntimeError(f"memory child failed:\n{proc.stderr[-2000:]}")
+            rec = json.loads(proc.stdout.strip().splitlines()[-1])
+            rec["samples"] = int(states.shape[0]) * n_traj
+            res[f"{factor}x"] = rec
+    unit = 1024.0 if sys.platform != "darwin" else 1024.0 ** 2  # ru_maxrss: KiB on Linux, bytes on macOS
+    one, ten = res["1x"], res["10x"]
+    ratio = ten["peak_kib"] / one["peak_kib"]
+    inc1 = one["peak_kib"] - one["before_fit_kib"]
+    inc10 = ten["peak_kib"] - ten["before_fit_kib"]
+    res["peak_ratio_10x_over_1x"] = ratio
+    print(f"\nmemory: peak RSS of a short fit, 1× data ({one['samples']} samples) {one['peak_kib'] / unit:.0f} MiB, "
+          f"10× data {ten['peak_kib'] / unit:.0f} MiB: ratio {ratio:.3f} (target ≤ 1.2); growth during the fit "
+          f"{inc1 / unit:.0f} MiB vs {inc10 / unit:.0f} MiB")
+    out["memory"] = res
+
+
+# -- mnemode run and start-up -----------------------------------------------------------------------
+
+def _seconds_in(obj, prefix=""):
+    found = {}
+    if isinstance(obj, dict):
+        for k, v in obj.items():
+            key = f"{prefix}.{k}" if prefix else str(k)
+            if isinstance(v, (int, float)) and str(k).endswith("seconds"):
+                found[key] = float(v)
+            else:
+                found.update(_seconds_in(v, key))
+    return found
+
+
+def _stage_wall(log_text: str) -> dict:
+    """Wall seconds of each stage of a run, from the timestamps of its log (data, fit, assess, export)."""
+    import re
+    from datetime import datetime
+
+    stamps = []
+    for line in log_text.splitlines():
+        m = re.match(r"\[(\d{4}-\d\d-\d\d \d\d:\d\d:\d\d,\d+) \w+\] (.*)", line)
+        if m:
+            stamps.append((datetime.strptime(m.group(1), "%Y-%m-%d %H:%M:%S,%f"), m.group(2)))
+    if not stamps:
+        return {}
+    starts = {"data": stamps[0][0]}
+    for when, msg in stamps:
+        for stage, prefix in (("fit", "fitting "), ("assess", "assessing "), ("export", "exporting ")):
+            if msg.startswith(prefix) and stage not in starts:
+                starts[stage] = when
+    order = [k for k in ("data", "fit", "assess", "export") if k in starts]
+    ends = [starts[k] for k in order[1:]] + [stamps[-1][0]]
+    return {k: (e - starts[k]).total_seconds() for k, e in zip(order, ends)}
+
+
+def bench_run(args, out: dict) -> None:
+    with tempfile.TemporaryDirectory() as tmp:
+        env = {**os.environ, "MNEMODE_RUNS": tmp, "OMP_NUM_THREADS": str(args.threads)}
+        cmd = [sys.executable, "-m", "mnemode", "run", f"experiment={args.run_preset}", "progress=false",
+               f"hydra.run.dir={tmp}/run", *args.run_overrides]
+        proc, wall = timed(lambda: subprocess.run(cmd, capture_output=True, text=True, env=env))
+        res = {"preset": args.run_preset, "overrides": list(args.run_overrides), "wall_seconds": wall,
+               "returncode": proc.returncode}
+        metrics = Path(tmp) / "run" / "metrics.json"
+        if metrics.is_file():
+            res["stages"] = _seconds_in(json.loads(metrics.read_text()))
+        else:
+            res["stderr_tail"] = proc.stderr[-1500:]
+        logfile = Path(tmp) / "run" / "mnemode.log"
+        if logfile.is_file():
+            res["stage_wall"] = _stage_wall(logfile.read_text())
+    print(f"\nmnemode run experiment={args.run_preset} {' '.join(args.run_overrides)}: {wall:.1f} s wall "
+          f"(exit {proc.returncode})")
+    for k, v in res.get("stage_wall", {}).items():
+        print(f"  stage {k}: {v:.1f} s (from the run's log)")
+    for k, v in res.get("stages", {}).items():
+        print(f"  {k}: {v:.1f} s")
+    out["run"] = res
+
+
+def bench_startup(args, out: dict) -> None:
+    env = {**os.environ, "OMP_NUM_THREADS": "1"}
+    cmds = {"mnemode --help": [sys.executable, "-m", "mnemode", "--help"],
+            "python -c 'import torch'": [sys.executable, "-c", "import torch"],
+            "python -c 'pass'": [sys.executable, "-c", "pass"]}
+    fns = {k: (lambda c=c: subprocess.run(c, capture_output=True, env=env)) for k, c in cmds.items()}
+    t = race(fns, 2 if args.quick else 4)
+    print("\nstart-up (fastest of interleaved runs):")
+    torch_s = t["python -c 'import torch'"]
+    for k, v in t.items():
+        print(f"  {k:<28} {v:.2f} s  ({v / torch_s:.2f}× import torch)")
+    out["startup"] = {"seconds": t, "help_over_import_torch": t["mnemode --help"] / t["python -c 'import torch'"]}
+
+
+# -- main -------------------------------------------------------------------------------------------
+
+def machine() -> dict:
+    return {"platform": platform.platform(), "processor": platform.processor() or platform.machine(),
+            "cpu_count": os.cpu_count(), "python": platform.python_version(), "torch": torch.__version__,
+            "threads": torch.get_num_threads(), "load_average": list(os.getloadavg()) if hasattr(os, "getloadavg")
+            else None}
+
+
+def main(argv=None) -> int:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--quick", action="store_true", help="short workloads, no compilation, no run section")
+    p.add_argument("--only", nargs="+", choices=SECTIONS, help="sections to run (default: all)")
+    p.add_argument("--repeats", type=int, default=None, help="timed repeats per variant (default 3 quick, 5 full)")
+    p.add_argument("--threads", type=int, default=1)
+    p.add_argument("--no-compile", dest="compile", action="store_false", help="skip the compiled variants")
+    p.add_argument("--run-preset", default="tiny", help="experiment preset for the run section")
+    p.add_argument("--run-overrides", nargs="*", default=[], help="further overrides of the run section, "
+                   "e.g. solver.compile=true")
+    p.add_argument("--fit-cases", nargs="+", choices=("demo", "large"), default=("demo", "large"),
+                   help="models of the fit section")
+    p.add_argument("--json", default="bench.json", help="where to write the results")
+    p.add_argument("--memory-child", help=argparse.SUPPRESS)
+    p.add_argument("--memory-steps", type=int, default=10, help=argparse.SUPPRESS)
+    args = p.parse_args(argv)
+    if args.memory_child:
+        _memory_child(args.memory_child, args.memory_steps)
+        return 0
+    torch.set_num_threads(args.threads)
+    if args.quick:
+        args.compile = False
+    if args.repeats is None:
+        args.repeats = 3 if args.quick else 5
+    sections = args.only or [s for s in SECTIONS if not (args.quick and s == "run")]
+    out = {"machine": machine(), "mode": "quick" if args.quick else "full", "repeats": args.repeats,
+           "compile": args.compile, "note": "ratios are measured side by side in one process (interleaved "
+           "repeats, fastest kept); absolute seconds depend on the machine's load"}
+    t0 = time.perf_counter()
+    print(f"mnemode benchmark ({out['mode']}): torch {torch.__version__}, {args.threads} thread(s), "
+          f"{os.cpu_count()} CPUs, load {out['machine']['load_average']}")
+    for name in sections:
+        globals()[f"bench_{name}"](args, out)
+        Path(args.json).write_text(json.dumps(out, indent=2, default=str))
+    out["total_seconds"] = time.perf_counter() - t0
+    Path(args.json).write_text(json.dumps(out, indent=2, default=str))
+    print(f"\nwrote {args.json} ({out['total_seconds']:.0f} s)")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
