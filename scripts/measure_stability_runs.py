@@ -18,7 +18,7 @@ import time
 
 import torch
 
-from mnemode.assess.baselines import physics_only_model
+from mnemode.assess.references import physics_only_model
 from mnemode.assess.stability import Envelope, summarise_escapes
 from mnemode.fitting.context import FitContext
 from mnemode.forecasting import choose_starts, run_forecasts

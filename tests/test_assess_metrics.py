@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 import torch
 
-from mnemode.assess.baselines import resolve_lyapunov
+from mnemode.assess.references import resolve_lyapunov
 from mnemode.assess.metrics import summarise_validity
 from mnemode.assess.statistics import (MarginalHistograms, acf_error, autocorrelation, histogram_counts,
                                        histogram_edges, kl_divergence, marginal_kl, mean_autocorrelation)

@@ -16,7 +16,7 @@ from mnemode.cli import main
 
 pytestmark = pytest.mark.slow
 
-SMALL = ["data.n_train=2", "data.n_val=1", "data.n_test=1", "data.spin_up=5", "compare=none"]
+SMALL = ["data.n_train=2", "data.n_val=1", "data.n_test=1", "data.spin_up=5", "compare=none", "assess.horizon=3"]
 
 
 def test_correction_command_writes_report_and_figures_and_never_overwrites(small_run, capsys):

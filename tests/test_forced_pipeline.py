@@ -51,8 +51,8 @@ def test_forced_slab_run_export_rollout_and_plain_torch_script(tmp_path):
     csv = data.save(tmp_path / "slab.csv")
     r = mnemode("run", "system=custom", "system.nominal._target_=slab_physics.NominalSlab",
                 "system.state_names=[T1,T2]", "system.state_units=[K,K]", "data=file", f"data.path={csv}",
-                "data.forcing_columns=[load]", "+data.forcing_units=[W]", "closure=filter_bank", "fit=readout_ridge",
-                "baselines=none", "warm_up=2.0", "assess.n_starts=6", "assess.horizon=5",
+                "data.forcing_columns=[load]", "+data.forcing_units=[W]", "closure=reservoir_filter_bank", "fit=readout_ridge",
+                "compare=none", "warm_up=2.0", "assess.n_starts=6", "assess.horizon=5",
                 "assess.free_run_length=10", "assess.acf_max_lag=1", "progress=false", "solver.step=0.05",
                 "name=slab", "hydra.run.dir=runs/slab", cwd=tmp_path)
     assert r.returncode == 0, r.stderr[-3000:]

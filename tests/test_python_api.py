@@ -44,4 +44,4 @@ def test_readme_python_example_runs(tmp_path):
     lines = [ln for ln in r.stdout.splitlines() if ln.strip()]
     assert float(lines[-2]) > 0
     assert lines[-1] == "torch.Size([101, 1, 3])"
-    assert list((tmp_path / "runs").rglob("metrics.json"))
+    assert list((tmp_path / "mnemode-runs").rglob("metrics.json"))

@@ -150,8 +150,8 @@ def test_measurement_noise_does_not_pass_for_a_coarse_interval():
 @pytest.mark.parametrize("system, overrides, dt, targets", [
     ("thermosyphon", {}, 0.2, "flow_map"),
     ("thermosyphon", {}, 0.02, "derivative"),
-    ("lorenz96", {"nominal_forcing": 6.0}, 0.01, "derivative"),
-    ("lorenz96", {"nominal_forcing": 6.0}, 0.1, "flow_map"),
+    ("lorenz96", {"nominal_F": 6.0}, 0.01, "derivative"),
+    ("lorenz96", {"nominal_F": 6.0}, 0.1, "flow_map"),
 ])
 def test_advice_on_the_demo_and_lorenz96(system, overrides, dt, targets):
     from mnemode import systems

@@ -353,6 +353,9 @@ def _export(rest: list[str]) -> None:
     parser.add_argument("--model", default=None, help="which fitted model (default: the run's main model)")
     parser.add_argument("--out", default=None, help="export folder (default: RUN_DIR/export/<model>)")
     parser.add_argument("--onnx", action="store_true", default=None, help="also write simulator.onnx")
+    parser.add_argument("--compiled", action="store_true", default=None,
+                        help="also compile the programs ahead of time into native packages (needs a C++ "
+                             "compiler; load them with load_simulator(..., compiled=True))")
     parser.add_argument("--overwrite", action="store_true", help="replace an existing export in that folder")
     parser.add_argument("--key-file", default=None,
                         help="sign the export with the key in this file (HMAC-SHA256; default: the "
@@ -364,7 +367,7 @@ def _export(rest: list[str]) -> None:
     key = read_key(args.key_file)
     with run.lock("export"):
         manifest = pipeline.export_run(run, model_name=args.model, onnx=args.onnx, overwrite=args.overwrite,
-                                       out_dir=args.out, key=key)
+                                       out_dir=args.out, key=key, compiled=args.compiled)
     name = manifest.get("model_name", "")
     where = args.out if args.out is not None else run.export_dir / name
     print(f"exported {name} to {where}" + (" (signed)" if key else ""))

@@ -139,24 +139,24 @@ def build_model(spec: DictConfig, system: System, dt: float, dtype=torch.float64
     if form == "continuous":
         if isinstance(closure, DiscreteRecurrent):
             raise ConfigError(f"{what}", f"{type(closure).__name__} acts on the flow map but the model form is "
-                              "'continuous'", "set model.form=discrete for this closure.")
+                              "'continuous'", "set model=discrete for this closure.")
         model = HybridField(physics, closure, system.dim)
     elif form == "discrete":
         if isinstance(closure, Recurrent):
             raise ConfigError(f"{what}", f"{type(closure).__name__} has a continuous hidden field but the model "
                               "form is 'discrete'", "use closure=gru_flow or closure=reservoir_flow for a discrete model "
-                              "with memory, or set model.form=continuous.")
+                              "with memory, or set model=continuous.")
         if n_forcing:
             raise ConfigError(f"{what}", f"the data have {n_forcing} forcing input(s) and the model form is "
                               "'discrete'; discrete models take no forcing in this version",
-                              "set model.form=continuous for forced data.")
+                              "set model=continuous for forced data.")
         flow = None
         if physics is not None:
             flow = FlowMap(physics, dt, RK4(float(spec.get("psi0_step") or dt / 10)))
         model = HybridFlowMap(flow, closure, system.dim, dt)
     else:
         raise ConfigError("model.form", f"is {form!r}; expected 'continuous' or 'discrete'",
-                          "set model.form=continuous or model.form=discrete.")
+                          "set model=continuous or model=discrete.")
     return model.to(dtype)
 
 
@@ -365,7 +365,7 @@ def assess_run(run: RunDir, cfg: DictConfig | None = None, system: System | None
     """Assess every fitted model of a run on its test set (never refits); writes metrics, figures, report."""
     cfg = cfg if cfg is not None else run.load_config()
     from .assess import AssessSettings, ModelEntry, assess_models
-    from .assess.baselines import oracle_unavailable
+    from .assess.references import oracle_unavailable
 
     system = system or make_system(cfg)
     data = data or run_data(run, cfg, system)
@@ -375,8 +375,8 @@ def assess_run(run: RunDir, cfg: DictConfig | None = None, system: System | None
     for name in model_specs(cfg):
         model, _ = load_model(run, name, cfg, system, data.dt, data.n_forcing)
         models[name] = ModelEntry(model, None if isinstance(model, HybridFlowMap) else solver)
-    baselines = "physics-only" + ("" if oracle_unavailable(system, data.test) else " and oracle")
-    log.info("assessing %s (+ %s) on %d test trajectories", ", ".join(models), baselines,
+    references = "physics-only" + ("" if oracle_unavailable(system, data.test) else " and oracle")
+    log.info("assessing %s (+ %s) on %d test trajectories", ", ".join(models), references,
              data.test.n_trajectories)
     writer = _writer(run)
     try:
@@ -423,7 +423,8 @@ def _flat_metrics(result: dict) -> dict:
 @holds_lock("export")  # one writer per run directory, from Python as from the command line
 def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | None = None,
                onnx: bool | None = None, system: System | None = None, data: DataSplits | None = None,
-               overwrite: bool = False, out_dir: str | Path | None = None, key: bytes | None = None) -> dict:
+               overwrite: bool = False, out_dir: str | Path | None = None, key: bytes | None = None,
+               compiled: bool | None = None) -> dict:
     """Export a fitted model of a run as a frozen simulator under ``RUN_DIR/export/<model>`` (or ``out_dir``).
 
     Each model of a run has its own folder, so exports of several models sit side
@@ -463,16 +464,19 @@ def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | Non
                                         for j, n in enumerate(names)}}
     log.info("exporting %s as a frozen simulator to %s", name, target)
     t0 = time.perf_counter()
+    solver = None if isinstance(model, HybridFlowMap) else make_solver(cfg)
+    if getattr(solver, "compile", False):  # the exported program is captured from the plain step
+        solver = type(solver)(solver.step)
     manifest = export_simulator(
-        model, target, dt=data.dt,
-        solver=None if isinstance(model, HybridFlowMap) else make_solver(cfg),
+        model, target, dt=data.dt, solver=solver,
         state_names=list(system.state_names), state_units=list(system.state_units),
         warm_up_steps=steps, envelope=data.train.envelope(),
         metrics={"fit": diagnostics, "assessment": assessment},
         config=OmegaConf.to_container(cfg, resolve=True), time_unit=system.time_unit,
         dtype=dtype_of(cfg), onnx=bool(cfg.export.onnx if onnx is None else onnx),
         extra_manifest={"model_name": name, "envelope_margin": float(cfg.export.envelope_margin)},
-        overwrite=overwrite, key=key, **forcing,
+        overwrite=overwrite, key=key, compiled=bool(cfg.export.get("compiled", False) if compiled is None
+                                                     else compiled), **forcing,
     )
     if out_dir is None:
         from .fileio import write_json

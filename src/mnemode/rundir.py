@@ -45,7 +45,7 @@ LOCK_FILE = ".mnemode.lock"
 PROVENANCE_FILE = "provenance.json"
 # what may already be in a folder a new run starts in: Hydra's log, opened before mnemode runs, and a lock
 # and what a start killed before it wrote config.yaml leaves (provenance.json is written first)
-_HARMLESS = frozenset({"mnemode.log", LOCK_FILE, PROVENANCE_FILE})
+_HARMLESS = frozenset({"mnemode.log", LOCK_FILE, PROVENANCE_FILE, "overrides.yaml"})  # overrides: a sweep job's
 # mnemode's own files of a run that failed before fitting: replaced by a retry
 _RECLAIMABLE = ("config.yaml", "status.json", PROVENANCE_FILE, "metrics.json", "data/train.npz",
                 "data/val.npz", "data/test.npz")

@@ -168,6 +168,29 @@ def _load_program(directory: Path, name: str, manifest: dict, verify: bool):
                               "load it with the torch version that wrote it, or re-export the run.") from None
 
 
+def _load_compiled(directory: Path, manifest: dict, verify: bool, with_warm_up: bool):
+    """The ahead-of-time compiled step (and warm-up) programs, hash-checked, or a clear error."""
+    rec = manifest.get("compiled") or {}
+    files = [rec.get(role, {}).get("file") for role in ("step", "warm_up")[: 2 if with_warm_up else 1]]
+    if not all(files):
+        why = "; ".join(f"{r}: {v.get('reason')}" for r, v in rec.items() if v.get("reason")) or "not requested"
+        raise CheckpointError(str(directory / MANIFEST_FILE), f"lists no compiled programs ({why})",
+                              "load without compiled=True, or re-export with `mnemode export --compiled` on a "
+                              "machine with a C++ compiler.")
+    from torch._inductor import aoti_load_package
+
+    out = []
+    for name in files:
+        path = directory / name
+        entry = manifest.get("files", {}).get(name, {})
+        data = path.read_bytes() if path.is_file() else b""
+        if not data or (verify and hashlib.sha256(data).hexdigest() != entry.get("sha256")):
+            raise CheckpointError(str(path), "is missing or does not match the SHA-256 in the manifest",
+                                  "copy the export directory again or re-export the run.")
+        out.append(aoti_load_package(str(path)))
+    return out[0], (out[1] if with_warm_up else None)
+
+
 def read_key(key_file=None) -> bytes | None:
     """A signing key from ``key_file`` (trailing newline dropped) or the ``MNEMODE_SIGNING_KEY`` variable."""
     if key_file is not None:
@@ -184,7 +207,7 @@ def read_key(key_file=None) -> bytes | None:
 
 
 def load_simulator(path, envelope_margin: float | None = None, on_envelope: str = "warn",
-                   verify: bool = True, key=None) -> "Simulator":
+                   verify: bool = True, key=None, compiled: bool = False) -> "Simulator":
     """Load an exported simulator after checking its files; never runs code from them.
 
     Checks, in order: the signature of the manifest when ``key`` is given
@@ -203,6 +226,11 @@ def load_simulator(path, envelope_margin: float | None = None, on_envelope: str 
         verify: check the SHA-256 hashes (leave on outside tests of tampering).
         key: the signing key (bytes or str); when given, an unsigned export or a
             signature that does not match is refused.
+        compiled: run the ahead-of-time compiled programs (``mnemode export --compiled``)
+            instead of the ``.pt2`` ones (many times faster per step). A compiled
+            package holds native code that runs when it is loaded, so it is loaded
+            only when asked, after its hash (and, with ``key``, the signature) is
+            checked: load compiled packages only from exports you made or trust.
 
     Raises:
         CheckpointError: missing/unreadable manifest or program, a hash or
@@ -222,8 +250,11 @@ def load_simulator(path, envelope_margin: float | None = None, on_envelope: str 
     except (KeyError, TypeError):
         raise CheckpointError(str(directory / MANIFEST_FILE), "is incomplete (no program entries)",
                               "re-export the run or copy the export directory again.") from None
-    step = _load_program(directory, step_file, manifest, verify)
-    wu = _load_program(directory, wu_file, manifest, verify) if wu_file else None
+    if compiled:
+        step, wu = _load_compiled(directory, manifest, verify, wu_file is not None)
+    else:
+        step = _load_program(directory, step_file, manifest, verify)
+        wu = _load_program(directory, wu_file, manifest, verify) if wu_file else None
     try:
         return Simulator(manifest, step, wu, directory=directory, envelope_margin=envelope_margin,
                          on_envelope=on_envelope)

@@ -1,4 +1,4 @@
-"""Assessment: forecast validity time, invariant-measure KL, autocorrelation and stability against baselines.
+"""Assessment: forecast validity time, invariant-measure KL, autocorrelation and stability against references (physics-only, oracle).
 
 Forecast error and validity times of single forecasts live in :mod:`mnemode.validity`
 (shared with fitting); this package summarises and compares them.

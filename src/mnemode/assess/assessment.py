@@ -44,7 +44,7 @@ from ..solvers import RK4, Solver
 from ..systems.base import System
 from ..validity import normalised_error, rms_scale, validity_times
 from . import figures as figs
-from .baselines import (oracle_forecasts, oracle_noise_level, oracle_unavailable, physics_only_model,
+from .references import (oracle_forecasts, oracle_noise_level, oracle_unavailable, physics_only_model,
                         resolve_lyapunov, truth_run)
 from .metrics import error_doubling_time, summarise_validity
 from .report import write_report
@@ -144,7 +144,7 @@ class _Run:
 
 def assess_models(models: dict, test: TrajectorySet, system: System, settings: AssessSettings | None = None,
                   out_dir: str | Path | None = None, writer=None, envelope: dict | None = None) -> dict:
-    """Score every model and the baselines on one test set; optionally write figures and a report.
+    """Score every model and the references (physics-only, oracle) on one test set; optionally write figures and a report.
 
     Args:
         models: name → :class:`ModelEntry` (a bare hybrid model is accepted as

@@ -1,4 +1,4 @@
-"""The assessment as Markdown: one table of every model against the baselines, figures, settings, cautions."""
+"""The assessment as Markdown: one table of every model against the references, figures, settings, cautions."""
 
 from __future__ import annotations
 

@@ -49,7 +49,7 @@ class GRUFlowClosure(DiscreteRecurrent):
         super().__init__(dim, 0, None, dtype)
         if int(forcing_dim) != 0:
             raise ConfigError("closure", f"GRUFlowClosure got forcing_dim={forcing_dim}; discrete closures take no "
-                              "forcing inputs in this version", "use model.form=continuous for forced data.")
+                              "forcing inputs in this version", "use model=continuous for forced data.")
         _check_choice("readout", readout, _READOUTS)
         _check_choice("initial_hidden", initial_hidden, _INITIAL)
         if int(hidden_size) < 1:

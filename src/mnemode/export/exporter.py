@@ -29,6 +29,8 @@ No program holds a pickled entry; the loader refuses any that does.
 from __future__ import annotations
 
 import copy
+import io
+from pathlib import Path
 from dataclasses import dataclass
 from typing import Mapping
 
@@ -49,8 +51,11 @@ from .programs import Program, StepProgram, WarmUpInterval, capture, program_byt
 __all__ = ["export_simulator", "ParityError", "STEP_ONNX_FILE", "WARM_UP_ONNX_FILE"]
 
 STEP_ONNX_FILE = "simulator.onnx"
+STEP_COMPILED_FILE = "simulator_compiled.pt2"
+WARM_UP_COMPILED_FILE = "warm_up_compiled.pt2"
 WARM_UP_ONNX_FILE = "warm_up.onnx"
-_ALL_FILES = (STEP_FILE, WARM_UP_FILE, STEP_ONNX_FILE, WARM_UP_ONNX_FILE, MANIFEST_FILE, SIGNATURE_FILE)
+_ALL_FILES = (STEP_FILE, WARM_UP_FILE, STEP_ONNX_FILE, WARM_UP_ONNX_FILE, STEP_COMPILED_FILE, WARM_UP_COMPILED_FILE,
+              MANIFEST_FILE, SIGNATURE_FILE)
 
 
 class ParityError(MnemodeError):
@@ -221,6 +226,34 @@ def onnx_programs(cap: Captured, f: Frozen, req: ExportRequest) -> dict:
     return rec
 
 
+def compiled_programs(cap: Captured) -> dict:
+    """Append ahead-of-time compiled copies of the programs (PyTorch's inductor packages) to ``cap.programs``.
+
+    Where no C++ compiler is present, or a package fails its parity check against the
+    exported program (≤ 1e-6), nothing is appended and the record says why: the plain
+    ``.pt2`` programs stay the ones to load. A compiled package holds native code, so
+    :func:`~mnemode.simulator.load_simulator` loads it only when asked (``compiled=True``).
+    """
+    import tempfile
+
+    from ..export_aot import AOTI, compile_program
+
+    examples = {"step": cap.step_examples, "warm_up": cap.warm_examples}
+    files = {"step": STEP_COMPILED_FILE, "warm_up": WARM_UP_COMPILED_FILE}
+    rec = {}
+    for p in [q for q in cap.programs if q.role in files]:
+        with tempfile.TemporaryDirectory() as tmp:
+            out = compile_program(torch.export.load(io.BytesIO(p.data)), Path(tmp) / files[p.role],
+                                  examples[p.role])
+            data = Path(out["path"]).read_bytes()
+        rec[p.role] = {k: out[k] for k in ("kind", "seconds", "parity", "reason")}
+        if out["kind"] == AOTI:
+            cap.programs.append(Program(f"{p.role}_compiled", files[p.role], "aoti", data, p.inputs, p.outputs,
+                                        p.maps))
+            rec[p.role]["file"] = files[p.role]
+    return rec
+
+
 def write_export(req: ExportRequest, programs: list[Program], manifest: dict, key: bytes | None) -> None:
     """Programs first, then the manifest, then its signature (a manifest means a complete export)."""
     out = req.out
@@ -245,7 +278,8 @@ def export_simulator(model, out_dir, *, dt: float, solver: Solver | None = None,
                      onnx: bool = False, parity_steps: int = 1000, extra_manifest: Mapping | None = None,
                      parity_x0=None, parity_batch: int = 8, envelope_margin: float | None = None,
                      check_float32: bool = True, overwrite: bool = False, forcing_names=(),
-                     forcing_units=None, forcing_envelope: Mapping | None = None, key=None) -> dict:
+                     forcing_units=None, forcing_envelope: Mapping | None = None, key=None,
+                     compiled: bool = False) -> dict:
     """Freeze a fitted hybrid model into programs plus a manifest, parity-checked.
 
     The exported one-step map is ``s_{n+1} = Φ_Δt(s_n)``, ``s = [x, r]``: for a
@@ -305,6 +339,8 @@ def export_simulator(model, out_dir, *, dt: float, solver: Solver | None = None,
         forcing_envelope: ``{name: [min, max]}`` of the forcing in training.
         key: sign the manifest with HMAC-SHA256 under this key (bytes or str,
             ≥ 16 bytes) into ``simulator.sig``.
+        compiled: also compile the programs ahead of time into native packages
+            (:func:`compiled_programs`; seconds per program, needs a C++ compiler).
 
     Returns:
         The manifest (a dict, also written to ``out_dir/simulator.json``).
@@ -328,9 +364,11 @@ def export_simulator(model, out_dir, *, dt: float, solver: Solver | None = None,
     # Further programs (ONNX copies, compiled packages) are appended to captured.programs here;
     # the manifest lists and hashes every entry of that list.
     onnx_rec = onnx_programs(captured, frozen, req) if req.onnx else None
+    compiled_rec = compiled_programs(captured) if compiled else None
     hidden_range = _parity.hidden_range(frozen.model, frozen.solver, req.dt, frozen.signals, req.parity_steps)
     manifest = build_manifest(req, frozen=frozen.model, solver=frozen.solver, substitution=frozen.substitution,
                               r_init=frozen.r_init, programs=captured.programs, parity=parity, onnx_rec=onnx_rec,
-                              hidden_range=hidden_range, metrics=metrics, config=config, time_unit=time_unit)
+                              hidden_range=hidden_range, metrics=metrics, config=config, time_unit=time_unit,
+                              compiled_rec=compiled_rec)
     write_export(req, captured.programs, manifest, key)
     return manifest

@@ -160,7 +160,7 @@ def versions(onnx: bool) -> dict:
 
 def build_manifest(req: ExportRequest, *, frozen, solver, substitution, r_init, programs: list[Program],
                    parity: dict, onnx_rec: dict | None, hidden_range, metrics: Mapping | None,
-                   config: Mapping | None, time_unit: str) -> dict:
+                   config: Mapping | None, time_unit: str, compiled_rec: dict | None = None) -> dict:
     """The manifest: one record per concern, then the caller's extra keys."""
     hidden = frozen.hidden_size
     warm = next((p.file for p in programs if p.role == "warm_up"), None)
@@ -183,6 +183,7 @@ def build_manifest(req: ExportRequest, *, frozen, solver, substitution, r_init, 
         "files": file_records(programs),
         "parity": parity,
         "onnx": onnx_rec,
+        "compiled": compiled_rec,
         "cautions": list(CAUTIONS),
     }
     manifest.update(req.extra)
