@@ -154,6 +154,8 @@ def compile_program(program, out_path, example_inputs, *, tolerance: float = _DE
         raise ConfigError(str(out), "is a directory", "give the path of a .pt2 file to write.")
     out.parent.mkdir(parents=True, exist_ok=True)
     example_inputs = tuple(example_inputs)
+    if getattr(ep, "example_inputs", None) is None:  # mnemode's saved programs carry none (nothing pickled)
+        ep.example_inputs = (example_inputs, {})
 
     reason, worst = None, None
     compiler = cxx_compiler()
