@@ -174,7 +174,7 @@ def test_bring_your_own_physics_example_runs_end_to_end(tmp_path):
     # a system without a truth generator has no oracle, and the report claims none
     assert "oracle" not in metrics["models"]
     assert not any(line.startswith("| oracle |") for line in (run / "report.md").read_text().splitlines())
-    manifest = json.loads((run / "export" / "memory" / "simulator.json").read_text())
+    manifest = json.loads((run / "export" / "memoryless" / "simulator.json").read_text())  # the main model
     assert manifest["state"]["names"] == ["v", "i"]
 
 
