@@ -130,11 +130,11 @@ def print_table(title: str, rows: dict, base_name: str) -> None:
 # -- models -----------------------------------------------------------------------------
 
 def demo_model(dtype=torch.float64):
-    from mnemode.pipeline import build_model, compose_config, make_system, model_specs
+    from mnemode.pipeline import build_model, compose_config, main_model_name, make_system, model_specs
 
     cfg = compose_config([])
     system = make_system(cfg)
-    model = build_model(model_specs(cfg)[str(cfg.model.name)], system, float(cfg.data.dt), dtype)
+    model = build_model(model_specs(cfg)[main_model_name(cfg)], system, float(cfg.data.dt), dtype)
     return system, model
 
 

@@ -22,7 +22,8 @@ from mnemode.assess.references import physics_only_model
 from mnemode.assess.stability import Envelope, summarise_escapes
 from mnemode.fitting.context import FitContext
 from mnemode.forecasting import choose_starts, run_forecasts
-from mnemode.pipeline import build_model, compose_config, make_solver, make_system, model_specs, prepare_data
+from mnemode.pipeline import (build_model, compose_config, main_model_name, make_solver, make_system, model_specs,
+                              prepare_data)
 
 
 def main() -> None:
@@ -48,7 +49,7 @@ def main() -> None:
     instantiate(specs["memoryless"].fit).fit(memoryless, data.train, data.val,
                                              FitContext(solver=solver, warm_up=float(cfg.warm_up)))
     print(f"memoryless baseline fitted in {time.perf_counter() - t0:.1f} s")
-    memory = build_model(specs[str(cfg.model.name)], system, data.dt)
+    memory = build_model(specs[main_model_name(cfg)], system, data.dt)
     models = {"physics_only": physics_only_model(system), "memoryless": memoryless, "memory (unfitted)": memory}
 
     test = data.test

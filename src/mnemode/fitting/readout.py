@@ -40,11 +40,11 @@ from ..closures.base import LinearReadout
 from .base import Fitter
 from ..errors import ConfigError, DataError, FitDiverged
 from ..hybrid import Forcing, HybridField, HybridFlowMap, warm_up
-from ..linalg import ridge_solve
-from .regression import relative_error, set_scaling
+from ..linalg import ridge_solve_normal
+from .regression import set_scaling
 from .targets import derivative_targets, flow_map_targets
 
-__all__ = ["ReadoutRidgeFit", "residual_targets", "drive_hidden"]
+__all__ = ["ReadoutRidgeFit", "residual_targets", "drive_hidden", "hidden_chunks"]
 
 # penalties tried when neither the fitter nor the closure names one (chosen on validation data)
 DEFAULT_ALPHAS = (1e-8, 1e-6, 1e-4)
@@ -77,15 +77,14 @@ def residual_targets(model: HybridField | HybridFlowMap, data: TrajectorySet, sc
     return index, inputs.reshape(len(index), B, -1), rho.reshape(len(index), B, -1)
 
 
-def drive_hidden(model: HybridField | HybridFlowMap, data: TrajectorySet, solver, dtype=None) -> torch.Tensor | None:
-    """Hidden states ``(T, B, H)`` along whole trajectories driven by the observations.
+def hidden_chunks(model: HybridField | HybridFlowMap, data: TrajectorySet, solver, dtype=None, chunk: int = 2048):
+    """Hidden states along whole trajectories driven by the observations, in time chunks.
 
+    Yields ``(first, r)`` with ``r`` the states ``(L, B, H)`` at samples ``first … first + L − 1``.
     The closure starts from its initial hidden state and is driven exactly as by
-    :func:`mnemode.hybrid.warm_up` (observed ``x`` linear between samples), one
-    interval at a time. ``None`` for a memoryless model.
+    :func:`mnemode.hybrid.warm_up` (observed ``x`` linear between samples), one interval
+    at a time; only one chunk is held at once.
     """
-    if model.hidden_size == 0:
-        return None
     dtype = dtype or model_dtype(model)
     states = data.tensor(dtype)
     dt = data.dt
@@ -93,32 +92,91 @@ def drive_hidden(model: HybridField | HybridFlowMap, data: TrajectorySet, solver
     forcing = Forcing(float(data.times[0]), dt, u) if u is not None and isinstance(model, HybridField) else None
     with torch.no_grad():
         r = model.closure.initial_hidden(states.shape[1:-1], dtype)
-        out = [r]
+        out, first = [r], 0
         for i in range(data.n_times - 1):
             r = warm_up(model, states[i:i + 2], dt, solver, r0=r, t0=float(data.times[i]), forcing=forcing)
             out.append(r)
-    return torch.stack(out)
+            if len(out) == chunk:
+                yield first, torch.stack(out)
+                first, out = first + chunk, []
+        if out:
+            yield first, torch.stack(out)
 
 
-def _features(model, data: TrajectorySet, solver, scheme, discard: int, dtype, targets=None):
-    """Readout features and targets at the samples past the hidden state's ``discard``-sample transient.
+def drive_hidden(model: HybridField | HybridFlowMap, data: TrajectorySet, solver, dtype=None) -> torch.Tensor | None:
+    """Hidden states ``(T, B, H)`` along whole trajectories (:func:`hidden_chunks` joined); ``None`` without memory."""
+    if model.hidden_size == 0:
+        return None
+    return torch.cat([r for _, r in hidden_chunks(model, data, solver, dtype)])
 
-    ``targets`` are :func:`residual_targets` of ``data`` if already computed.
+
+class _NormalEquations:
+    """``ΦᵀΦ``, ``ΦᵀỸ`` and the target sums a ridge readout and its errors need, accumulated chunk by chunk.
+
+    ``Ỹ`` are the normalised targets ``(ρ − out_offset)/out_scale``; the errors are
+    reported in physical units, ``ρ − ρ̂ = out_scale ⊙ (Ỹ − ΦW)``, so that for
+    ``Σ_n ‖ρ̂_n − ρ_n‖²`` only ``Σ ỹ²`` per component is needed beside the two products.
+    """
+
+    def __init__(self):
+        self.gram = self.rhs = self.y2 = self.y_sum = self.y_sq = None
+        self.n = 0
+
+    def add(self, phi: torch.Tensor, y: torch.Tensor, y_n: torch.Tensor) -> None:
+        phi, y, y_n = phi.to(torch.float64), y.to(torch.float64), y_n.to(torch.float64)
+        parts = (phi.T @ phi, phi.T @ y_n, (y_n ** 2).sum(0), y.sum(0), (y ** 2).sum(0))
+        if self.gram is None:
+            self.gram, self.rhs, self.y2, self.y_sum, self.y_sq = parts
+        else:
+            for name, value in zip(("gram", "rhs", "y2", "y_sum", "y_sq"), parts):
+                setattr(self, name, getattr(self, name) + value)
+        self.n += phi.shape[0]
+
+    def relative_error(self, w: torch.Tensor, out_scale: torch.Tensor) -> float:
+        """:func:`~mnemode.fitting.regression.relative_error` of the readout ``w`` on the accumulated data."""
+        if self.n == 0:
+            return float("nan")
+        resid = (torch.einsum("pc,pq,qc->c", w, self.gram, w) - 2 * (w * self.rhs).sum(0) + self.y2)
+        err = float((out_scale.to(torch.float64) ** 2 * resid.clamp_min(0)).sum())
+        spread = float((self.y_sq - self.y_sum ** 2 / self.n).sum())
+        return float(np.sqrt(err / max(spread, 1e-300)))
+
+
+def _normal_equations(model, data: TrajectorySet, solver, scheme, discard: int, dtype, targets=None):
+    """Readout features and targets past the hidden state's ``discard``-sample transient, accumulated in chunks.
+
+    ``targets`` are :func:`residual_targets` of ``data`` if already computed. The features
+    are never held for the whole data set at once, so memory does not grow with its length
+    beyond the targets themselves.
     """
     index, inputs, rho = targets if targets is not None else residual_targets(model, data, scheme)
-    r_all = drive_hidden(model, data, solver, dtype)
     keep = index >= discard
     if not keep.any():
         raise DataError("training data", f"trajectories of {data.n_times} samples leave nothing after the "
                         f"{discard}-sample warm-up of the hidden state",
                         "use longer trajectories or a shorter warm_up.")
-    index, inputs, rho = index[keep], inputs[keep].to(dtype), rho[keep].to(dtype)
-    D = model.dim
-    x, u = inputs[..., :D], (inputs[..., D:] if inputs.shape[-1] > D else None)
-    with torch.no_grad():
-        r = r_all[index] if r_all is not None else None
-        phi = model.closure.readout_features(x, r, u)
-    return phi.reshape(-1, phi.shape[-1]), rho.reshape(-1, rho.shape[-1])
+    D, scale = model.dim, model.closure.scaling
+    position = np.full(data.n_times, -1)
+    position[index] = np.arange(len(index))
+    acc = _NormalEquations()
+    if model.hidden_size:
+        chunks = ((first, r, first + r.shape[0]) for first, r in hidden_chunks(model, data, solver, dtype))
+    else:
+        chunks = ((k, None, min(k + 2048, data.n_times)) for k in range(0, data.n_times, 2048))
+    for first, r, last in chunks:
+        rows = position[first:last]
+        sel = np.nonzero((rows >= 0) & (np.arange(first, first + len(rows)) >= discard))[0]
+        if sel.size == 0:
+            continue
+        at = torch.as_tensor(rows[sel])
+        x_in = inputs[at].to(dtype)
+        x, u = x_in[..., :D], (x_in[..., D:] if x_in.shape[-1] > D else None)
+        y = rho[at].to(dtype)
+        with torch.no_grad():
+            phi = model.closure.readout_features(x, None if r is None else r[torch.as_tensor(sel)], u)
+            phi, y = phi.reshape(-1, phi.shape[-1]), y.reshape(-1, y.shape[-1])
+            acc.add(phi, y, scale.outputs_inverse(y))
+    return acc
 
 
 class ReadoutRidgeFit(Fitter):
@@ -170,18 +228,15 @@ class ReadoutRidgeFit(Fitter):
         _, inputs, rho = targets
         set_scaling(closure, inputs.reshape(-1, inputs.shape[-1]), rho.reshape(-1, rho.shape[-1]))
         discard = int(round(ctx.warm_up / train.dt)) if model.hidden_size else 0
-        phi, y = _features(model, train, ctx.solver, self.scheme, discard, dtype, targets)
-        scale = closure.scaling
-        y_n = scale.outputs_inverse(y)
-        val_phi = val_rho = None
-        if val is not None:
-            val_phi, val_rho = _features(model, val, ctx.solver, self.scheme, discard, dtype)
+        fit_eq = _normal_equations(model, train, ctx.solver, self.scheme, discard, dtype, targets)
+        val_eq = None if val is None else _normal_equations(model, val, ctx.solver, self.scheme, discard, dtype)
+        out_scale = closure.scaling.out_scale
         best = None
         for alpha in self._alphas(closure):
-            w = ridge_solve(phi, y_n, alpha * phi.shape[0], penalise_last=False)
-            train_err = relative_error(scale.outputs(phi @ w), y)
-            val_err = relative_error(scale.outputs(val_phi @ w), val_rho) if val_phi is not None else float("nan")
-            score = val_err if val_phi is not None else train_err
+            w = ridge_solve_normal(fit_eq.gram, fit_eq.rhs, alpha * fit_eq.n, penalise_last=False)
+            train_err = fit_eq.relative_error(w, out_scale)
+            val_err = val_eq.relative_error(w, out_scale) if val_eq is not None else float("nan")
+            score = val_err if val_eq is not None else train_err
             if not np.isfinite(score):
                 continue
             if best is None or score < best[0]:
@@ -192,4 +247,4 @@ class ReadoutRidgeFit(Fitter):
         _, alpha, w, train_err, val_err = best
         closure.set_readout(w)
         return {"train_error": train_err, "val_error": val_err, "ridge": alpha,
-                "n_samples": int(phi.shape[0]), "fit_seconds": time.perf_counter() - t0}
+                "n_samples": int(fit_eq.n), "fit_seconds": time.perf_counter() - t0}

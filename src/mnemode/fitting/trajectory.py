@@ -466,10 +466,11 @@ class TrajectoryFit(Fitter):
         scale = float(np.sqrt(((flat - flat.mean(0)) ** 2).sum(-1).mean()))
         vset = val if val is not None else train
         vt, vs = self._val_starts(vset.n_trajectories, vset.n_times, n_warm, n_val, self.val_windows)
-        v = dict(states=vset.tensor(dtype), traj=vt, start=vs, n_warm=n_warm, n_after=n_val, dt=dt,
+        states = train.tensor(dtype)  # one copy, shared by validation when it runs on the training data
+        v = dict(states=states if vset is train else vset.tensor(dtype), traj=vt, start=vs, n_warm=n_warm, n_after=n_val, dt=dt,
                  solver=ctx.solver, forcing=None if vset.forcing is None else torch.as_tensor(vset.forcing, dtype=dtype),
                  scale=scale, x_std=x_std_np, n_loss=min(n_val, h1))
-        return _Problem(states=train.tensor(dtype),
+        return _Problem(states=states,
                         forcing=None if train.forcing is None else torch.as_tensor(train.forcing, dtype=dtype),
                         x_std=torch.as_tensor(x_std_np, dtype=dtype), dt=dt, solver=ctx.solver,
                         n_traj=train.n_trajectories, n_times=train.n_times, n_warm=n_warm, n_grad=n_grad,
