@@ -219,8 +219,9 @@ def test_multiscale_truth_reports_the_observed_variables_predictability_time():
     # Two-scale Lorenz-96 with the published ratios b = c = 10 (Lorenz 1996) on a small ring: the
     # fast Y set the largest exponent, so 1/λ is far shorter than the observed X's error growth.
     system = lorenz96_two_scale(k=6, j=6, spin_up=3.0)
-    test = generate(system, n_trajectories=2, duration=9.0, dt=0.01, seed=2, solver=RK4(0.004))
-    s = AssessSettings(warm_up=0.0, horizon=6.0, n_starts=8, free_run_length=3.0, free_run_starts=2,
+    # the horizon must let the oracle's error reach γ (its validity is ≈ 6 time units here)
+    test = generate(system, n_trajectories=2, duration=15.0, dt=0.01, seed=2, solver=RK4(0.004))
+    s = AssessSettings(warm_up=0.0, horizon=12.0, n_starts=8, free_run_length=3.0, free_run_starts=2,
                        transient=0.5, stability_length=3.0, acf_max_lag=0.5, n_bins=20, truth_step=0.004,
                        lyapunov_duration=6.0)
     res = assess_models({}, test, system, s)

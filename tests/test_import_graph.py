@@ -39,7 +39,8 @@ PLACES = {
     "__init__": "command",  # the public API re-exports from every stage
     "errors": "base", "fileio": "base", "version": "base", "linalg": "base", "configs_path": "base",
     "config_docs": "base", "metric_labels": "base", "reproducible": "base", "distributed": "base",
-    "config_safety": "base", "resolvers": "base", "loading": "physics",
+    "config_safety": "base", "resolvers": "base", "loading": "physics", "compiled": "physics",
+    "export_aot": "export",
     "systems": "physics", "solvers": "physics", "data": "physics", "lyapunov": "physics",
     "closures": "closures",
     "hybrid": "hybrid",
