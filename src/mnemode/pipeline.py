@@ -283,9 +283,7 @@ def fit_models(cfg: DictConfig, run: RunDir, system: System, data: DataSplits, *
         # a resumed fit continues its TensorBoard curves from the checkpointed step
         start_step = checkpoint_step(run.checkpoint_dir(name)) if resume else None
         writer = _writer(run, purge_step=start_step)
-        ctx = FitContext(solver=solver, warm_up=float(cfg.warm_up), lyapunov_time=(1.0 / lyap) if lyap else None,
-                         writer=writer, checkpoint_dir=run.checkpoint_dir(name), resume=resume,
-                         seed=int(cfg.seed), progress=bool(cfg.progress), name=name)
+        ctx = _fit_context(cfg, run, name, solver, lyap, resume, writer=writer, progress=bool(cfg.progress))
         log.info("fitting %s: %s by %s", name, type(model.closure).__name__, type(fitter).__name__)
         t0 = time.perf_counter()
         try:
@@ -311,6 +309,14 @@ def fit_models(cfg: DictConfig, run: RunDir, system: System, data: DataSplits, *
         if diagnostics.get("note"):
             log.warning("%s: %s", name, diagnostics["note"])
     return results
+
+
+def _fit_context(cfg: DictConfig, run: RunDir, name: str, solver: Solver, lyap, resume: bool, *, writer,
+                 progress: bool) -> FitContext:
+    """What a fitter of model ``name`` is told about the run (rank 0 and data-parallel workers alike)."""
+    return FitContext(solver=solver, warm_up=float(cfg.warm_up), lyapunov_time=(1.0 / lyap) if lyap else None,
+                      writer=writer, checkpoint_dir=run.checkpoint_dir(name), resume=resume,
+                      seed=int(cfg.seed), progress=progress, name=name)
 
 
 def _fitter(spec: DictConfig, name: str) -> Fitter:
@@ -349,9 +355,7 @@ def fit_worker(cfg: DictConfig, run_dir: str | Path, *, resume: bool = False) ->
             continue
         model = build_model(spec, system, data.dt, dtype, what=f"{name}.closure", n_forcing=data.n_forcing)
         torch.manual_seed(int(cfg.seed))
-        ctx = FitContext(solver=solver, warm_up=float(cfg.warm_up), lyapunov_time=(1.0 / lyap) if lyap else None,
-                         writer=None, checkpoint_dir=run.checkpoint_dir(name), resume=resume,
-                         seed=int(cfg.seed), progress=False, name=name)
+        ctx = _fit_context(cfg, run, name, solver, lyap, resume, writer=None, progress=False)
         fitter.fit(model, data.train, data.val, ctx)
 
 
