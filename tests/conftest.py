@@ -16,6 +16,17 @@ from pathlib import Path
 import pytest
 
 
+def pytest_configure(config):
+    """Under pytest-xdist, give each worker its share of the cores (torch and the subprocesses it starts)."""
+    workers = int(os.environ.get("PYTEST_XDIST_WORKER_COUNT", "1"))
+    if workers > 1:
+        share = str(max(1, (os.cpu_count() or 1) // workers))
+        os.environ.setdefault("OMP_NUM_THREADS", share)
+        import torch
+
+        torch.set_num_threads(int(os.environ["OMP_NUM_THREADS"]))
+
+
 @functools.lru_cache(maxsize=None)
 def _trajectories(system_name: str, system_kw: tuple, kw: tuple):
     from mnemode import systems
