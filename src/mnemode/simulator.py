@@ -489,7 +489,7 @@ class Simulator:
         name = names[comp]
         value = float(x[idx])
         lo, hi = env[name]
-        where = what if step is None else f"{what} at step {step} (t = {t0 + step * self.dt:g} {self.time_unit})".rstrip()
+        where = what if step is None else self._at(what, step, t0)
         if x.ndim > 2:
             where += f", sample {idx[0]}"
         if x.ndim > 1:
@@ -507,6 +507,11 @@ class Simulator:
                                       f"Fix: {fix}"), stacklevel=_caller_level())
         return True
 
+    def _at(self, what: str, step: int, t0: float) -> str:
+        """``"<what> at step k (t = … unit)"``, without a dangling space when the time has no unit."""
+        when = f"{t0 + step * self.dt:g} {self.time_unit}".strip()
+        return f"{what} at step {step} (t = {when})"
+
     def _finite(self, s: torch.Tensor, what: str, step: int, t0: float) -> None:
         """Stop with :class:`NonFiniteStateError` when any component of ``s`` (``(B, n)``) is NaN or inf."""
         if bool(torch.isfinite(s).all()):
@@ -516,7 +521,7 @@ class Simulator:
         if what == "warm-up":
             names = names[self.dim:]
         raise NonFiniteStateError(
-            f"{what} at step {step} (t = {t0 + step * self.dt:g} {self.time_unit}), trajectory {b}".replace(" )", ")"),
+            f"{self._at(what, step, t0)}, trajectory {b}",
             f"component {names[c]!r} became {float(s[b, c])}; the simulator blew up (the state had left the "
             "region where the learned correction is trustworthy)",
             "start inside the training envelope, shorten the rollout, or retrain on data covering this region; "
