@@ -28,6 +28,16 @@ Sections (``--only`` picks some; all by default):
 ``run``       Wall time of ``mnemode run`` (the ``tiny`` preset; ``--run-preset``)
               and of its fit stages from the run's ``metrics.json``; full mode only.
 ``startup``   ``mnemode --help`` against ``python -c "import torch"``.
+``ddp``       Data-parallel fitting throughput: the demo model's trajectory fit
+              (``TrajectoryFit``, global batch 64, fixed horizon, validation and
+              checkpoints off during the updates) in one process and under
+              ``torchrun --standalone --nproc_per_node=2`` (DistributedDataParallel,
+              gloo), one torch thread per process. Each launch times only its
+              update loop (rank 0 stamps every update; the first updates are
+              warm-up and not counted), so start-up, process-group set-up and data
+              generation are excluded. Prints windows per second of each, the ratio
+              2 processes / 1 process, and the cores this process may use: 2× is
+              the ceiling, reached only with 2 idle cores.
 
 Timing: one thread by default (``--threads``), one warm-up call, then the fastest
 of ``--repeats`` runs, the variants compared in a row interleaved so all see the
@@ -35,14 +45,16 @@ same load. Only ratios are meaningful on a shared machine; absolute times are
 printed for orientation. Results go to ``--json`` (default ``bench.json``) with
 the machine, the torch version and the thread count.
 
-``--quick`` (under about two minutes on an idle 2-core machine) shortens every
-workload, skips compilation and the ``run`` section; the full mode runs them all.
+``--quick`` (under about two minutes on an idle 2-core machine; ``ddp`` alone about a
+minute) shortens every workload, skips compilation and the ``run`` section; the full
+mode runs them all.
 Compiling takes minutes on a loaded machine; its time is reported separately.
 
 Usage::
 
     python scripts/bench.py --quick
     python scripts/bench.py --only fit export --threads 1
+    python scripts/bench.py --quick --only ddp
 """
 
 from __future__ import annotations
@@ -56,13 +68,14 @@ import resource
 import subprocess
 import sys
 import tempfile
+import textwrap
 import time
 from pathlib import Path
 
 import numpy as np
 import torch
 
-SECTIONS = ("fit", "export", "truth", "memory", "run", "startup")
+SECTIONS = ("fit", "export", "truth", "memory", "run", "startup", "ddp")
 
 # Accuracy-matched truth steps: the largest RK4 step keeping the truth within 1e-3 relative error of
 # DOP853 (rtol 1e-10) over 100 time units, measured once on this kind of machine (not re-derived here).
@@ -551,6 +564,115 @@ def bench_startup(args, out: dict) -> None:
     for k, v in t.items():
         print(f"  {k:<28} {v:.2f} s  ({v / torch_s:.2f}× import torch)")
     out["startup"] = {"seconds": t, "help_over_import_torch": t["mnemode --help"] / t["python -c 'import torch'"]}
+
+
+# -- data-parallel fitting throughput ----------------------------------------------------------------
+
+# Run once per launch (plain python, or each torchrun process): the demo model's trajectory fit on
+# a little generated data; rank 0 writes how long each update took to the JSON path in argv[2].
+DDP_FIT_SCRIPT = textwrap.dedent("""
+    import json, sys, time
+    import torch
+
+    torch.set_num_threads(1)
+    from mnemode import distributed
+    from mnemode.data import generate
+    from mnemode.fitting import FitContext, TrajectoryFit
+    from mnemode.pipeline import build_model, compose_config, main_model_name, make_system, model_specs
+    from mnemode.solvers import RK4
+
+    work = json.loads(sys.argv[1])
+    distributed.init_from_env()
+    cfg = compose_config([])  # the demo: thermosyphon physics + leaky recurrent closure (hidden 18)
+    system = make_system(cfg)
+    dt = float(cfg.data.dt)
+    model = build_model(model_specs(cfg)[main_model_name(cfg)], system, dt, torch.float64)
+    train = generate(system, n_trajectories=4, duration=work["duration"], dt=dt, solver=RK4(0.01), seed=0,
+                     spin_up=20.0)
+
+    class Stamps:  # a TensorBoard stand-in: the time each update logs its loss (rank 0 only gets a writer)
+        times = []
+        def add_scalar(self, tag, value, step):
+            if tag.endswith("/train/loss"):
+                self.times.append(time.perf_counter())
+        def flush(self):
+            pass
+
+    stamps = Stamps()
+    never = work["steps"] + 1  # validation and checkpoints only before and after the timed updates
+    fit = TrajectoryFit(steps=work["steps"], batch_size=work["batch"], horizon=work["horizon"], curriculum=0.0,
+                        warm_up_grad=2.0, readout_init="offset", val_every=never, val_windows=2, val_horizon=1.0,
+                        checkpoint_every=never)
+    ctx = FitContext(solver=RK4(dt), warm_up=float(cfg.warm_up), writer=stamps, seed=0, name="demo")
+    out = fit.fit(model, train, None, ctx)
+    if distributed.is_main():
+        t = stamps.times
+        json.dump({"world": distributed.world_size(), "steps": out["steps"], "recoveries": out["recoveries"],
+                   "update_seconds": [b - a for a, b in zip(t, t[1:])]}, open(sys.argv[2], "w"))
+    distributed.finish()
+""")
+
+
+def _ddp_launch(script: Path, work: dict, n_proc: int, result: Path, tmp: str) -> dict:
+    """One launch of the fit script in ``n_proc`` processes; rank 0's timings."""
+    env = {**os.environ, "OMP_NUM_THREADS": "1"}
+    for key in ("RANK", "WORLD_SIZE", "LOCAL_RANK", "MASTER_ADDR", "MASTER_PORT"):
+        env.pop(key, None)
+    launcher = [] if n_proc == 1 else ["-m", "torch.distributed.run", "--standalone", f"--nproc_per_node={n_proc}"]
+    cmd = [sys.executable, *launcher, str(script), json.dumps(work), str(result)]
+    proc = subprocess.run(cmd, cwd=tmp, env=env, capture_output=True, text=True)
+    if proc.returncode != 0 or not result.is_file():
+        raise RuntimeError(f"ddp fit in {n_proc} process(es) failed (exit {proc.returncode}):\n{proc.stderr[-3000:]}")
+    rec = json.loads(result.read_text())
+    result.unlink()
+    if rec["world"] != n_proc or rec["steps"] != work["steps"]:
+        raise RuntimeError(f"ddp fit in {n_proc} process(es) ran {rec['steps']} updates in a group of "
+                           f"{rec['world']}; expected {work['steps']} in {n_proc}")
+    timed_updates = rec["update_seconds"][work["skip"] - 1:]  # stamps are update ends: skip the first `skip`
+    rec["timed_updates"] = len(timed_updates)
+    rec["median_update_seconds"] = float(np.median(timed_updates))
+    rec["mean_update_seconds"] = float(np.mean(timed_updates))
+    rec["windows_per_second"] = work["batch"] / rec["median_update_seconds"]
+    rec["windows_per_second_mean"] = work["batch"] / rec["mean_update_seconds"]
+    return rec
+
+
+def bench_ddp(args, out: dict) -> None:
+    q = args.quick
+    # horizon in time units (Δt 0.02); warm-up 10 time units (500 intervals, last 100 differentiated) per window
+    work = {"batch": 64, "horizon": 1.0 if q else 2.0, "steps": 12 if q else 60, "skip": 2 if q else 5,
+            "duration": 20.0 if q else 40.0}
+    rounds = 1 if q else 2  # full mode: 1 p, 2 p, 1 p, 2 p; the faster of each kept
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
+    load_before = list(os.getloadavg()) if hasattr(os, "getloadavg") else None
+    best: dict[int, dict] = {}
+    with tempfile.TemporaryDirectory() as tmp:
+        script = Path(tmp) / "ddp_fit.py"
+        script.write_text(DDP_FIT_SCRIPT)
+        for _ in range(rounds):
+            for n_proc in (1, 2):
+                rec = _ddp_launch(script, work, n_proc, Path(tmp) / f"result_{n_proc}.json", tmp)
+                if n_proc not in best or rec["windows_per_second"] > best[n_proc]["windows_per_second"]:
+                    best[n_proc] = rec
+    load_after = list(os.getloadavg()) if hasattr(os, "getloadavg") else None
+    ratio = best[2]["windows_per_second"] / best[1]["windows_per_second"]
+    print(f"\nddp: demo trajectory fit (hidden 18), global batch {work['batch']}, forecast {work['horizon']:g} time "
+          f"units, {work['steps']} updates ({work['skip']} warm-up, not timed), 1 torch thread per process, "
+          f"{'fastest of ' + str(rounds) + ' interleaved launches' if rounds > 1 else 'one launch each'}")
+    for n_proc, rec in best.items():
+        print(f"  {n_proc} process{'es' if n_proc > 1 else '  '}: {rec['windows_per_second']:8.1f} windows/s "
+              f"(median update {rec['median_update_seconds']:.3f} s; mean {rec['windows_per_second_mean']:.1f} "
+              f"windows/s over {rec['timed_updates']} updates)")
+    print(f"  ratio 2 processes / 1 process: {ratio:.2f}× (ceiling 2× with 2 idle cores; this process may use "
+          f"{cores} of {os.cpu_count()} CPUs; load average before {load_before}, after {load_after})")
+    out["ddp"] = {"workload": {**work, "model": "demo (thermosyphon + recurrent leaky, hidden 18)",
+                               "threads_per_process": 1, "launches_per_variant": rounds},
+                  "one_process": best[1], "two_processes": best[2], "ratio_2_over_1": ratio,
+                  "usable_cores": cores, "cpu_count": os.cpu_count(),
+                  "load_average_before": load_before, "load_average_after": load_after,
+                  "note": "windows/s from the median update of rank 0 (each update all-reduces the gradients, "
+                          "so the processes keep step); start-up, process-group set-up and data generation "
+                          "are not timed"}
 
 
 # -- main -------------------------------------------------------------------------------------------
