@@ -510,7 +510,9 @@ def _rollout(rest: list[str]) -> None:
                         help="forcing inputs of a forced simulator: CSV with a time column and one column per "
                              "input, covering the history and the forecast (linear between rows)")
     parser.add_argument("--steps", type=int, required=True, help="number of observation intervals")
-    parser.add_argument("--t0", type=float, default=0.0, help="time of --x0 when there is no history (default 0)")
+    parser.add_argument("--t0", type=float, default=0.0,
+                        help="time of --x0 when there is no history (default 0); a forced simulator's physics "
+                             "sees t0 + k·Δt on step k (with --history, t0 is its last time)")
     parser.add_argument("--cold-start", action="store_true",
                         help="let a model with memory start without a full warm-up (its hidden state then "
                              "starts from the untrained initial vector)")

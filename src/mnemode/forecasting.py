@@ -6,7 +6,9 @@ state is first driven by the ``n_warm + 1`` observed samples ``x_{s−n_warm} ..
 ``n_horizon`` intervals (:func:`mnemode.hybrid.simulate`). Every model gets the
 same starts and the same warm-up history, so scores are comparable; memoryless
 models ignore the history. A long free run is the same with a longer horizon,
-of which a transient is discarded.
+of which a transient is discarded. Given the samples' true times, the physics of
+a continuous model sees each forecast's own clock: the true time of its start
+sample at the start (``time_origin`` of :func:`mnemode.hybrid.simulate`).
 
 These functions only simulate: they never change a model's parameters. Fitting
 (validation forecasts) and assessment (test forecasts) both use them, so they sit
@@ -103,7 +105,7 @@ class RunOutcome:
 
 def run_forecasts(model: HybridField | HybridFlowMap, solver: Solver | None, states: np.ndarray, starts: Starts,
                   n_warm: int, n_steps: int, dt: float, forcing: np.ndarray | None = None,
-                  batch_size: int | None = None, on_batch=None) -> RunOutcome:
+                  batch_size: int | None = None, on_batch=None, times: np.ndarray | None = None) -> RunOutcome:
     """Warm up on ``n_warm`` intervals of observed history, then free-run ``n_steps`` intervals.
 
     Args:
@@ -119,6 +121,10 @@ def run_forecasts(model: HybridField | HybridFlowMap, solver: Solver | None, sta
             (the window must then lie inside the data).
         batch_size: forecasts run together (all at once when ``None``).
         on_batch: called with the number of forecasts after each batch (progress).
+        times: true sample times ``(T, B)`` of ``states``
+            (:meth:`~mnemode.data.TrajectorySet.absolute_times`); the physics then
+            sees ``times[s, b] + t`` along a forecast from sample ``s`` of
+            trajectory ``b``. ``None``: its clock reads 0 at every start.
 
     Returns:
         A :class:`RunOutcome` whose ``states`` start at ``x_s`` (row 0). A
@@ -131,6 +137,7 @@ def run_forecasts(model: HybridField | HybridFlowMap, solver: Solver | None, sta
     size = n if batch_size is None else max(1, int(batch_size))
     out = np.full((n_steps + 1, n, data.shape[-1]), np.nan)
     failure = None
+    origins = None if times is None else np.asarray(times, dtype=np.float64)[starts.index, starts.trajectory]
     for lo in range(0, n, size):
         sl = slice(lo, min(n, lo + size))
         traj = torch.as_tensor(starts.trajectory[sl])
@@ -143,7 +150,8 @@ def run_forecasts(model: HybridField | HybridFlowMap, solver: Solver | None, sta
         try:
             with torch.no_grad():
                 r0 = warm_up(model, history, dt, solver, t0=-n_warm * dt, forcing=u) if model.hidden_size else None
-                x = simulate(model, history[-1], n_steps, dt, solver, r0=r0, t0=0.0, forcing=u)
+                x = simulate(model, history[-1], n_steps, dt, solver, r0=r0, t0=0.0, forcing=u,
+                             time_origin=None if origins is None else origins[sl])
             out[:, sl] = x.detach().to(torch.float64).cpu().numpy()
         except _NUMERICAL_FAILURES as exc:  # a blow-up is a result, not a crash
             failure = f"{type(exc).__name__}: {exc}"

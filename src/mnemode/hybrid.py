@@ -15,6 +15,16 @@ where Ψ0 integrates f0 accurately over one ``Δt``.
 :func:`simulate` free-runs either kind from ``(x0, r0)``; :func:`warm_up` drives the
 hidden state with observed ``x`` (the observations replace the model's ``x``) to
 give the ``r0`` a forecast starts from. Trajectories are ``(time, batch, dim)``.
+
+Time. Solvers run on a scalar clock (``t0 + i·Δt`` plus sub-steps); a nominal
+field that depends on ``t`` (a daily cycle, a scheduled input) must see each
+trajectory's *true* time instead. :func:`simulate` therefore takes a
+``time_origin`` per trajectory and the physics is called at ``t + origin``: a
+float when every trajectory shares one origin, else a ``(*batch, 1)`` tensor in
+the state's dtype that broadcasts against ``x`` ``(*batch, dim)``
+(:func:`physics_time`). Forcing keeps its own clock (the solver's ``t``).
+Discrete models are autonomous: Ψ0 integrates ``f0`` over each ``Δt`` from
+``t = 0``, so a time-dependent ``f0`` needs the continuous form.
 """
 
 from __future__ import annotations
@@ -27,7 +37,42 @@ from torch import nn
 from .closures.base import Closure, DiscreteRecurrent, Recurrent
 from .solvers import FlowMap, Solver
 
-__all__ = ["HybridField", "HybridFlowMap", "Forcing", "Driven", "simulate", "warm_up"]
+__all__ = ["HybridField", "HybridFlowMap", "Forcing", "Driven", "drive", "physics_time", "reads_time", "simulate",
+           "warm_up"]
+
+
+def reads_time(physics) -> bool:
+    """Whether a nominal field may depend on ``t``: it exists and does not declare ``autonomous = True``."""
+    return physics is not None and not getattr(physics, "autonomous", False)
+
+
+def physics_time(values, batch_shape: tuple | None = None) -> float | torch.Tensor | None:
+    """Times in the form a nominal field receives them: ``None``, a float, or a ``(*batch, 1)`` float64 tensor.
+
+    ``values`` is ``None``, a number, or one time per trajectory (array or tensor
+    of shape ``batch_shape``, or ``(*batch_shape, 1)``). Equal values collapse to
+    one float, so sets whose trajectories share a clock keep the scalar path.
+
+    Raises:
+        ValueError: per-trajectory times whose shape does not match ``batch_shape``.
+    """
+    if values is None:
+        return None
+    if isinstance(values, (int, float)):
+        return float(values)
+    v = torch.as_tensor(values).detach().to(device="cpu", dtype=torch.float64)
+    if v.numel() == 0:
+        return None
+    if v.numel() == 1 or bool((v == v.reshape(-1)[0]).all()):
+        return float(v.reshape(-1)[0])
+    if batch_shape is not None:
+        batch_shape = tuple(batch_shape)
+        if tuple(v.shape) == batch_shape + (1,):
+            v = v[..., 0]
+        if tuple(v.shape) != batch_shape:
+            raise ValueError(f"time_origin has shape {tuple(v.shape)}, but the states have batch shape {batch_shape}; "
+                             "give one time per trajectory (or one float for all)")
+    return v.unsqueeze(-1)
 
 
 class Forcing:
@@ -88,23 +133,46 @@ class HybridField(nn.Module):
 
 
 class Driven(nn.Module):
-    """A hybrid field bound to one forcing signal: ``f(t, s) = field(t, s, u(t))``.
+    """A hybrid field bound to a forcing signal and a time origin: ``f(t, s) = field(t + origin, s, u(t))``.
 
-    Solvers integrate ``f(t, y)``; this is how an explicit forcing reaches the field
-    without the field itself carrying it. Built per call, never stored on a model.
+    Solvers integrate ``f(t, y)`` on their own scalar clock; this is how an explicit
+    forcing and each trajectory's true time reach the field without the field
+    itself carrying them. The forcing is read on the solver's clock ``t`` (it has
+    its own origin); the physics sees ``t + origin``. ``time_origin`` is ``None``, a
+    float, or a ``(*batch, 1)`` tensor as :func:`physics_time` makes it (the sum is
+    cast to the state's dtype). Built per call, never stored on a model.
     """
 
-    def __init__(self, field: HybridField, forcing: Callable):
+    def __init__(self, field: HybridField, forcing: Callable | None = None, time_origin=None):
         super().__init__()
-        self.field, self.forcing = field, forcing
+        if isinstance(time_origin, (int, float)):
+            time_origin = float(time_origin)
+        self.field, self.forcing, self.time_origin = field, forcing, time_origin
 
     def forward(self, t, state: torch.Tensor) -> torch.Tensor:
-        return self.field(t, state, self.forcing(t))
+        u = None if self.forcing is None else self.forcing(t)
+        origin = self.time_origin
+        if origin is None:
+            return self.field(t, state, u)
+        if isinstance(origin, float):
+            return self.field(t + origin, state, u)
+        # sum in float64, then the state's dtype: a float64 (B, 1) time would promote a float32 state
+        true_t = (origin.to(state.device) + t).to(state.dtype)
+        return self.field(true_t, state, u)
 
 
-def drive(field: HybridField, forcing: Callable | None) -> nn.Module:
-    """``field`` itself when unforced, else the field driven by ``forcing`` (see :class:`Driven`)."""
-    return field if forcing is None else Driven(field, forcing)
+def drive(field: HybridField, forcing: Callable | None = None, time_origin=None) -> nn.Module:
+    """``field`` itself when unforced with no time shift, else the :class:`Driven` field.
+
+    ``time_origin`` as :class:`Driven` takes it. It is dropped when nothing reads
+    ``t``: a data-only model (no physics), or physics declared ``autonomous``.
+    """
+    origin = time_origin if reads_time(getattr(field, "physics", None)) else None
+    if isinstance(origin, (int, float)) and origin == 0.0:
+        origin = None
+    if forcing is None and origin is None:
+        return field
+    return Driven(field, forcing, origin)
 
 
 class HybridFlowMap(nn.Module):
@@ -150,13 +218,25 @@ def _initial_state(model, x0: torch.Tensor, r0: torch.Tensor | None) -> torch.Te
 
 def simulate(model: HybridField | HybridFlowMap, x0: torch.Tensor, n_steps: int, dt: float,
              solver: Solver | None = None, r0: torch.Tensor | None = None, t0: float = 0.0,
-             return_hidden: bool = False, forcing: Callable | None = None):
+             return_hidden: bool = False, forcing: Callable | None = None, time_origin=None):
     """Free-run a hybrid model for ``n_steps`` observation intervals of ``dt``.
 
     Returns observed states ``(n_steps + 1, *x0.shape)`` (and the hidden states if
     ``return_hidden``). A continuous model needs a ``solver``; a discrete one
     ignores it (its ``dt`` is fixed by construction). ``forcing`` is ``u(t)`` (a
-    :class:`Forcing`) for a forced continuous model, evaluated at the solver's times.
+    :class:`Forcing`) for a forced continuous model, evaluated at the solver's
+    times ``t0 + i·dt`` (plus sub-steps).
+
+    ``time_origin`` (continuous models) is each trajectory's time at the solver's
+    ``t = 0``: a float, or one value per state of ``x0`` (shape ``x0.shape[:-1]``);
+    the physics is then called at ``origin + t`` (see :func:`physics_time`), e.g.
+    ``origin`` = a forecast start's true time and ``t0 = 0``. ``None`` (default)
+    leaves the physics on the solver's clock. Physics declared ``autonomous``
+    (:func:`reads_time`) and discrete models, which are autonomous, ignore it.
+
+    Raises:
+        ValueError: a continuous model without a solver; a ``time_origin`` that
+            does not match ``x0``'s batch shape.
     """
     s0 = _initial_state(model, x0, r0)
     if isinstance(model, HybridFlowMap):
@@ -171,7 +251,10 @@ def simulate(model: HybridField | HybridFlowMap, x0: torch.Tensor, n_steps: int,
     else:
         if solver is None:
             raise ValueError("simulating a continuous hybrid model needs a solver")
-        traj = solver.unroll(drive(model, forcing), s0, t0, dt, n_steps)
+        origin = physics_time(time_origin, tuple(x0.shape[:-1])) if reads_time(model.physics) else None
+        if isinstance(origin, torch.Tensor):
+            origin = origin.to(x0.device)
+        traj = solver.unroll(drive(model, forcing, origin), s0, t0, dt, n_steps)
     x = traj[..., : model.dim]
     return (x, traj[..., model.dim:]) if return_hidden else x
 
@@ -200,7 +283,8 @@ def warm_up(model: HybridField | HybridFlowMap, history: torch.Tensor, dt: float
     ``r_{n+1} = cell(x_n, r_n)`` (discrete) from ``r0`` (the closure's initial
     hidden state by default) over the ``T − 1`` intervals, the first sample at
     time ``t0``. ``forcing`` is ``u(t)`` for a forced model. Returns ``None`` for a
-    memoryless model. ``grad_steps`` keeps the graph only for the last that many
+    memoryless model. The physics is not evaluated here (the observations stand in
+    for ``x``), so a warm-up needs no time origin. ``grad_steps`` keeps the graph only for the last that many
     intervals (truncated backpropagation saves time on long warm-ups).
     """
     if model.hidden_size == 0:

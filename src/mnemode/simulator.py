@@ -285,7 +285,10 @@ class Simulator:
     observation times, linear between them: ``n_steps + 1`` samples from ``x0``,
     or ``T + n_steps`` with a history of ``T`` samples (the history's times, then
     the forecast's). Its physics sees the rollout's clock: ``t0`` at the start
-    state (default 0), the history at ``t0 − (T − 1)·Δt … t0``.
+    state (default 0), ``t0 + k·Δt`` at step ``k`` (plus the solver's sub-steps),
+    the history at ``t0 − (T − 1)·Δt … t0``. ``t0`` is one float for the whole
+    batch; pass the start state's true time for physics that reads ``t``. An
+    unforced export's one-input program is autonomous (``t = 0`` at each interval).
     """
 
     def __init__(self, manifest: dict, step_program, warm_up_program=None, *, directory: Path | None = None,
@@ -683,8 +686,8 @@ class Simulator:
             forcing: forced simulators: samples ``(L, B, U)`` or ``(L, U)`` at the
                 observation times, ``L = T + n_steps`` with a history of ``T``
                 samples, else ``n_steps + 1``.
-            t0: the time of the start state on the rollout's clock (forced physics
-                sees it; the history ends there).
+            t0: the time of the start state on the rollout's clock, one float (forced
+                physics sees ``t0 + k·Δt`` at step ``k``; the history ends there).
             cold_start: let a model with memory start from ``x0`` without a
                 warm-up or ``r0`` (its hidden state is then the initial vector).
 

@@ -380,11 +380,12 @@ def _score_model(run: _Run, name: str, entry: ModelEntry, kind: str) -> None:
     """Forecasts and free runs of one model: validity, invariant statistics, stability."""
     p, s, test = run.plan, run.settings, run.test
     run.bar.set_postfix_str(f"{name}: forecasts")
+    true_times = test.absolute_times()
     fc = run_forecasts(entry.model, entry.solver, test.states, p.starts, p.n_warm, p.n_horizon, p.dt,
-                       test.forcing, s.batch_size, run.bar.update)
+                       test.forcing, s.batch_size, run.bar.update, times=true_times)
     run.bar.set_postfix_str(f"{name}: free runs")
     fr = run_forecasts(entry.model, entry.solver, test.states, p.free.starts, p.n_warm, p.free.n_total, p.dt,
-                       test.forcing, s.batch_size, run.bar.update)
+                       test.forcing, s.batch_size, run.bar.update, times=true_times)
     times, censored = validity_times(fc.states, p.truth, p.dt, s.gamma, p.scale)
     m = {"validity_times": times, "_censored": censored}
     curves = _Curves(fc.states, _median_error(fc.states, p.truth, p.scale), times)

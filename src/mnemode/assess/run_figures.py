@@ -20,12 +20,14 @@ from . import figures as figs
 __all__ = ["hidden_traces", "build_run_figures", "run_figures"]
 
 
-def hidden_traces(model, solver, states: np.ndarray, start: int, n_warm: int, n_h: int, dt: float) -> np.ndarray:
+def hidden_traces(model, solver, states: np.ndarray, start: int, n_warm: int, n_h: int, dt: float,
+                  start_time: float | None = None) -> np.ndarray:
     """Hidden states ``(n_warm + n_h + 1, H)`` of one memory model around a forecast start.
 
     Over the warm-up the observations ``states[start − n_warm : start + 1]``
     (``(T, D)``) drive ``r`` one interval at a time (the same driving the
-    assessment uses); from ``start`` the model runs free for ``n_h`` intervals.
+    assessment uses); from ``start`` the model runs free for ``n_h`` intervals,
+    its physics on the true clock from ``start_time`` (the start sample's time).
     """
     dtype = next((p.dtype for p in model.parameters()), torch.float64)
     hist = torch.as_tensor(states[start - n_warm: start + 1], dtype=dtype)[:, None, :]   # (T, 1, D)
@@ -36,7 +38,7 @@ def hidden_traces(model, solver, states: np.ndarray, start: int, n_warm: int, n_
         for i in range(n_warm):
             r = warm_up(model, hist[i: i + 2], dt, solver, r0=r, t0=(i - n_warm) * dt)
             rs.append(r)
-        _, r_free = simulate(model, hist[-1], n_h, dt, solver, r0=r, return_hidden=True)
+        _, r_free = simulate(model, hist[-1], n_h, dt, solver, r0=r, return_hidden=True, time_origin=start_time)
     warm = torch.stack(rs)[:, 0]                      # (n_warm + 1, H)
     free = r_free[1:, 0]                              # (n_h, H)
     return torch.cat([warm, free]).double().numpy()
@@ -70,7 +72,8 @@ def build_run_figures(run_path: str | Path, models: dict, test, warm_up_time: fl
     if memory and test.forcing is None:  # forced models would need u(t) along the trace too
         n_h = int(round(horizon / dt))
         n_warm = max(0, min(int(round(warm_up_time / dt)), test.n_times - 1 - n_h))
-        hidden = {n: hidden_traces(e.model, e.solver, test.states[:, 0], n_warm, n_warm, n_h, dt)
+        start_time = float(test.absolute_times()[n_warm, 0])
+        hidden = {n: hidden_traces(e.model, e.solver, test.states[:, 0], n_warm, n_warm, n_h, dt, start_time)
                   for n, e in memory.items()}
         t = (np.arange(n_warm + n_h + 1) - n_warm) * dt
         built["hidden_states"] = figs.hidden_state_figure(t, hidden, styles, time_unit)

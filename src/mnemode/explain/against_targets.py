@@ -109,7 +109,7 @@ def compare_with_targets(model, ts, trace: Trace, warm_up: float = 0.0,
         out.append(_comparison("flow map (discrete)", t_rows, learned, targets, keep, rows))
     else:
         flow_map = FlowMapFit().flow_map_for(model, ts.dt)
-        inputs, targets = flow_map_targets(ts, flow_map, continuous=True)
+        inputs, targets = flow_map_targets(ts, flow_map, continuous=True, true_time=True)
         D = trace.x.shape[-1]
         x_mid = inputs[:, :D].to(trace.x.dtype)
         u_mid = inputs[:, D:].to(trace.x.dtype) if inputs.shape[1] > D else None

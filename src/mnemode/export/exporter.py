@@ -39,7 +39,7 @@ import torch
 from ..archive import SIGNATURE_FILE, sign
 from ..errors import ConfigError, MnemodeError
 from ..fileio import atomic_path, write_json
-from ..hybrid import HybridFlowMap
+from ..hybrid import HybridFlowMap, reads_time
 from ..simulator import MANIFEST_FILE, STEP_FILE, WARM_UP_FILE
 from ..solvers import Solver
 from . import parity as _parity
@@ -177,12 +177,17 @@ def check_parity(f: Frozen, cap: Captured, req: ExportRequest, check_float32: bo
            "dtype": str(req.dtype).replace("torch.", ""), "tolerance": tol, **rec,
            "max_abs_diff": worst, "passed": worst <= tol}
     if not worst <= tol:
+        timed = ""
+        if not req.forced and reads_time(getattr(f.model, "physics", None)):
+            timed = (" If the physics depends on t: an export without forcing inputs steps each interval from "
+                     "t = 0, so give the time-dependent drive to the model as a forcing column (forced programs "
+                     "take t).")
         raise ParityError("exported simulator",
                           f"differs from the eager model by {worst:.3g} (max abs over {req.parity_steps} steps, "
                           f"batches {list(batches)}); required ≤ {tol:g}",
                           "the model's forward probably depends on state torch.export cannot see (globals, "
                           "Python-side randomness, in-place buffer updates); make it a pure function of its "
-                          "inputs and buffers.")
+                          "inputs and buffers." + timed)
     if check_float32 and req.dtype == torch.float64:
         out["float32"] = _parity.float32_figure(f.model, f.solver, req.dt, f.signals, req.parity_steps,
                                                 req.parity_batch, req.forced)

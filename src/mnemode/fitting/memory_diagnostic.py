@@ -129,7 +129,7 @@ def memory_need(train: TrajectorySet, val: TrajectorySet | None, physics, *, sch
     def samples(ts: TrajectorySet, what: str):
         if targets == "flow_map":
             with torch.no_grad():
-                inputs, rho = flow_map_targets(ts, flow)
+                inputs, rho = flow_map_targets(ts, flow, true_time=True)
             index = np.arange(ts.n_times - 1)
         else:
             inputs, rho = derivative_targets(ts, physics, scheme)

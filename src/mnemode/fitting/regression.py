@@ -286,4 +286,5 @@ class FlowMapFit(_RegressionFit):
                               "fit a HybridField (continuous targets) for forced systems.")
         flow_map = self.flow_map_for(model, ts.dt)
         continuous = self.target == "continuous" or (self.target == "auto" and isinstance(model, HybridField))
-        return flow_map_targets(ts, flow_map, continuous=continuous)
+        # a continuous model integrates f0 at true times; a discrete model's Ψ0 is autonomous
+        return flow_map_targets(ts, flow_map, continuous=continuous, true_time=isinstance(model, HybridField))

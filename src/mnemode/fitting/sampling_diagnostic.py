@@ -144,7 +144,7 @@ def sampling_advice(data: TrajectorySet, physics, *, scheme: str = "central4", t
     with torch.no_grad():
         x_d, rho = derivative_targets(ts, physics, scheme)
     flow = None if physics is None else FlowMap(physics, dt, RK4(dt / psi0_substeps))
-    x_f, q = flow_map_targets(ts, flow, continuous=True)
+    x_f, q = flow_map_targets(ts, flow, continuous=True, true_time=True)
     fitted_gap = _fitted_gap(x_d.numpy(), rho.numpy(), x_f.numpy(), q.numpy())
     B, D = ts.n_trajectories, ts.dim
     rho = rho.reshape(ts.n_times - lo - hi, B, D).numpy()

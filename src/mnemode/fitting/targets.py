@@ -30,6 +30,13 @@ argument (linear in time between samples inside an interval) and appended to the
 closure inputs, so closures then take ``forcing_dim = n_forcing`` extra inputs,
 ordered ``[x, u]``.
 
+Time: ``f0`` is evaluated at each sample's true time
+(:meth:`~mnemode.data.TrajectorySet.absolute_times`, i.e. ``times`` plus each
+trajectory's ``start_times``), as a float when all trajectories share it, else as
+a ``(B, 1)`` / ``(N, 1)`` tensor (:func:`mnemode.hybrid.physics_time`); flow-map
+targets do so when asked (``true_time``: the continuous model's targets), while a
+discrete model's Ψ0 is autonomous.
+
 All results are float64 tensors ``(N, ·)`` with ``N`` = usable samples × trajectories.
 """
 
@@ -41,6 +48,7 @@ from torch import nn
 
 from ..data import TrajectorySet, finite_difference
 from ..errors import ConfigError, DataError
+from ..hybrid import physics_time, reads_time
 from ..solvers import FlowMap
 
 __all__ = ["derivative_targets", "flow_map_targets"]
@@ -70,7 +78,9 @@ def derivative_targets(ts: TrajectorySet, physics: nn.Module | None, scheme: str
     Args:
         ts: evenly sampled trajectories ``(T, B, D)``.
         physics: nominal field ``f0(t, x[, u])`` (called once per sample time, batched
-            over trajectories, in float64), or ``None`` for a data-only model (``f0 = 0``).
+            over trajectories, in float64, at the samples' true times: a float, or a
+            ``(B, 1)`` tensor when the trajectories started at different times), or
+            ``None`` for a data-only model (``f0 = 0``).
         scheme: a :data:`mnemode.data.FD_SCHEMES` name.
 
     Returns:
@@ -84,9 +94,10 @@ def derivative_targets(ts: TrajectorySet, physics: nn.Module | None, scheme: str
     index, deriv = finite_difference(ts.states, dt, scheme)
     x = torch.as_tensor(ts.states[index], dtype=torch.float64)
     u = None if ts.forcing is None else torch.as_tensor(ts.forcing[index], dtype=torch.float64)
+    true_t = ts.absolute_times()
     with torch.no_grad():
-        f0 = torch.stack([_call(physics, float(ts.times[i]), x[j], None if u is None else u[j])
-                          for j, i in enumerate(index)])
+        f0 = torch.stack([_call(physics, physics_time(true_t[i], (ts.n_trajectories,)), x[j],
+                                None if u is None else u[j]) for j, i in enumerate(index)])
     targets = torch.as_tensor(deriv, dtype=torch.float64) - f0
     inputs = x if u is None else torch.cat((x, u), dim=-1)
     inputs, targets = _flatten(inputs), _flatten(targets)
@@ -95,23 +106,24 @@ def derivative_targets(ts: TrajectorySet, physics: nn.Module | None, scheme: str
 
 
 class _Forced(nn.Module):
-    """``σ·f0(t_a + σ·s, z, u(t_a + σ·s))`` with ``u`` linear from ``u_0`` at 0 to ``u_1`` at ``dt``.
+    """``σ·f0(o + t_a + σ·s, z, u(t_a + σ·s))`` with ``u`` linear from ``u_0`` at 0 to ``u_1`` at ``dt``.
 
-    ``σ = −1`` runs the field backwards in time (for half steps from ``x_{n+1}``).
+    ``σ = −1`` runs the field backwards in time (for half steps from ``x_{n+1}``);
+    ``o`` is each pair's true start time (``None``: the physics' clock starts at 0).
     """
 
-    def __init__(self, physics, u0, u1, dt: float, t_a: float, sign: float):
+    def __init__(self, physics, u0, u1, dt: float, t_a: float, sign: float, origin=None):
         super().__init__()
-        self.physics, self.u0, self.u1 = physics, u0, u1
+        self.physics, self.u0, self.u1, self.origin = physics, u0, u1, origin
         self.dt, self.t_a, self.sign = float(dt), float(t_a), float(sign)
 
     def forward(self, s, z):
         t = self.t_a + self.sign * s
         u = None if self.u0 is None else self.u0 + (t / self.dt) * (self.u1 - self.u0)
-        return self.sign * _call(self.physics, t, z, u)
+        return self.sign * _call(self.physics, t if self.origin is None else self.origin + t, z, u)
 
 
-def flow_map_targets(ts: TrajectorySet, flow_map: FlowMap | None, continuous: bool = False):
+def flow_map_targets(ts: TrajectorySet, flow_map: FlowMap | None, continuous: bool = False, true_time: bool = False):
     """Inputs and targets ``(x_{n+1} − Ψ0(x_n)) / Δt`` from consecutive samples of ``ts``.
 
     Args:
@@ -122,6 +134,11 @@ def flow_map_targets(ts: TrajectorySet, flow_map: FlowMap | None, continuous: bo
             ``None`` for a data-only model (Ψ0 = identity, f0 = 0).
         continuous: return the midpoint-corrected targets for a vector-field closure
             (module docstring) instead of the discrete ones.
+        true_time: integrate ``f0`` at each pair's true time (``absolute_times``)
+            instead of from ``t = 0`` over every interval: the targets of a
+            continuous model, whose physics may depend on ``t`` (ignored for a
+            field declared ``autonomous``). Leave it off for a discrete model (its
+            Ψ0 is autonomous).
 
     Returns:
         ``(inputs, targets)``: ``(N, D + U)`` and ``(N, D)``, ``N = (T − 1)·B``.
@@ -136,10 +153,12 @@ def flow_map_targets(ts: TrajectorySet, flow_map: FlowMap | None, continuous: bo
     if is_map and abs(flow_map.dt - dt) > 1e-9 * max(1.0, dt):
         raise ConfigError("flow map Ψ0", f"integrates over {flow_map.dt} but the data are sampled every {dt}",
                           "build Ψ0 with the data's sampling interval.")
-    needs_field = ts.forcing is not None or continuous
+    # the clock does not matter without physics or for a field declared autonomous
+    true_time = true_time and flow_map is not None and (not is_map or reads_time(flow_map.field))
+    needs_field = ts.forcing is not None or continuous or true_time
     if flow_map is not None and not is_map and needs_field:
-        raise ConfigError("flow map Ψ0", "is a plain callable, but forcing inputs or continuous targets need "
-                          "the nominal field", "pass a mnemode.solvers.FlowMap of the nominal field.")
+        raise ConfigError("flow map Ψ0", "is a plain callable, but forcing inputs, continuous targets or true "
+                          "times need the nominal field", "pass a mnemode.solvers.FlowMap of the nominal field.")
     states = torch.as_tensor(ts.states, dtype=torch.float64)
     x0, x1 = _flatten(states[:-1]), _flatten(states[1:])
     u0 = u1 = None
@@ -147,38 +166,41 @@ def flow_map_targets(ts: TrajectorySet, flow_map: FlowMap | None, continuous: bo
         forcing = torch.as_tensor(ts.forcing, dtype=torch.float64)
         u0, u1 = _flatten(forcing[:-1]), _flatten(forcing[1:])
     physics = flow_map.field if is_map else None
+    origin = None
+    if true_time:
+        origin = physics_time(ts.absolute_times()[:-1].reshape(-1), (x0.shape[0],))
     with torch.no_grad():
         if flow_map is None:
             base = x0
         elif not needs_field:
             base = flow_map(x0)
         else:
-            base = flow_map.solver.advance(_Forced(physics, u0, u1, dt, 0.0, 1.0), 0.0, x0, dt)
+            base = flow_map.solver.advance(_Forced(physics, u0, u1, dt, 0.0, 1.0, origin), 0.0, x0, dt)
         residual = (x1 - base) / dt
     if not continuous:
         inputs = x0 if u0 is None else torch.cat((x0, u0), dim=-1)
         _check_finite("flow-map targets", inputs, residual)
         return inputs, residual
-    targets, x_mid = _midpoint_correct(physics, flow_map, x0, x1, u0, u1, dt, residual)
+    targets, x_mid = _midpoint_correct(physics, flow_map, x0, x1, u0, u1, dt, residual, origin)
     inputs = x_mid if u0 is None else torch.cat((x_mid, 0.5 * (u0 + u1)), dim=-1)
     _check_finite("flow-map targets", inputs, targets)
     return inputs, targets
 
 
-def _midpoint_correct(physics, flow_map, x0, x1, u0, u1, dt, residual):
+def _midpoint_correct(physics, flow_map, x0, x1, u0, u1, dt, residual, origin=None):
     """Continuous-form targets and midpoint inputs (see the module docstring)."""
     if physics is None:  # f0 = 0: Φ0 = I, the midpoint is the chord's middle
         return residual, 0.5 * (x0 + x1)
     solver, h = flow_map.solver, 0.5 * dt
     with torch.no_grad():
-        forward = solver.advance(_Forced(physics, u0, u1, dt, 0.0, 1.0), 0.0, x0, h)
-        backward = solver.advance(_Forced(physics, u0, u1, dt, dt, -1.0), 0.0, x1, h)
+        forward = solver.advance(_Forced(physics, u0, u1, dt, 0.0, 1.0, origin), 0.0, x0, h)
+        backward = solver.advance(_Forced(physics, u0, u1, dt, dt, -1.0, origin), 0.0, x1, h)
     x_mid = 0.5 * (forward + backward)
     # Φ0(Δt, Δt/2) at x_mid, row by row with reverse-mode autograd (the map acts on each pair
     # separately, so the gradient of the sum of output i over pairs is row i of every Jacobian).
     with torch.enable_grad():
         z = x_mid.detach().requires_grad_(True)
-        end = solver.advance(_Forced(physics, u0, u1, dt, h, 1.0), 0.0, z, h)
+        end = solver.advance(_Forced(physics, u0, u1, dt, h, 1.0, origin), 0.0, z, h)
         rows = [torch.autograd.grad(end[:, i].sum(), z, retain_graph=i + 1 < end.shape[-1])[0]
                 for i in range(end.shape[-1])]
     jac = torch.stack(rows, dim=-2)                                # (N, D, D)

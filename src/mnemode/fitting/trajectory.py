@@ -102,6 +102,7 @@ class _Problem:
 
     states: torch.Tensor
     forcing: torch.Tensor | None
+    times: torch.Tensor  # (T, B) true sample times, float64: the physics' clock along each window
     x_std: torch.Tensor
     dt: float
     solver: object
@@ -127,7 +128,7 @@ class _WindowLoss(torch.nn.Module):
     def forward(self, traj: torch.Tensor, start: torch.Tensor, n_f: int) -> torch.Tensor:
         p = self._prob
         pred, truth = self._fitter._run_windows(self.model, p.states, p.forcing, traj, start, p.n_warm, p.n_grad,
-                                                n_f, p.dt, p.solver, self._fitter.reforce_every)
+                                                n_f, p.dt, p.solver, self._fitter.reforce_every, p.times)
         return (((pred - truth) / p.x_std) ** 2).mean()
 
 
@@ -345,8 +346,12 @@ class TrajectoryFit(Fitter):
 
     # -- unrolls --------------------------------------------------------------------
     def _forecast(self, model, win: torch.Tensor, n_warm: int, n_grad: int, n_f: int, dt: float, solver,
-                  reforce: int | None, forcing: Forcing | None = None) -> torch.Tensor:
-        """Warm up on ``win[:n_warm+1]``, forecast ``n_f`` intervals; returns ``(n_f, B, D)`` predictions."""
+                  reforce: int | None, forcing: Forcing | None = None, time_origin=None) -> torch.Tensor:
+        """Warm up on ``win[:n_warm+1]``, forecast ``n_f`` intervals; returns ``(n_f, B, D)`` predictions.
+
+        The window's clock reads 0 at its first sample; ``time_origin`` ``(B,)`` is that
+        sample's true time, which the physics adds (:func:`mnemode.hybrid.simulate`).
+        """
         r = None
         if model.hidden_size:
             n_free = n_warm - n_grad
@@ -358,19 +363,21 @@ class TrajectoryFit(Fitter):
         while left > 0:
             k = left if reforce is None else min(left, reforce)
             xs, rs = simulate(model, win[pos], k, dt, solver, r0=r, t0=pos * dt, return_hidden=True,
-                              forcing=forcing)
+                              forcing=forcing, time_origin=time_origin)
             preds.append(xs[1:])
             if model.hidden_size:
                 r = rs[-1]
             pos, left = pos + k, left - k
         return torch.cat(preds)
 
-    def _run_windows(self, model, states, forcing, traj, start, n_warm, n_grad, n_f, dt, solver, reforce):
+    def _run_windows(self, model, states, forcing, traj, start, n_warm, n_grad, n_f, dt, solver, reforce, times):
         win = take_windows(states, traj, start, n_warm + n_f + 1)
-        u = None
-        if forcing is not None and isinstance(model, HybridField):
-            u = Forcing(0.0, dt, take_windows(forcing, traj, start, n_warm + n_f + 1))
-        pred = self._forecast(model, win, n_warm, n_grad, n_f, dt, solver, reforce, u)
+        u = origin = None
+        if isinstance(model, HybridField):
+            if forcing is not None:
+                u = Forcing(0.0, dt, take_windows(forcing, traj, start, n_warm + n_f + 1))
+            origin = times[torch.as_tensor(start, dtype=torch.long), torch.as_tensor(traj, dtype=torch.long)]
+        pred = self._forecast(model, win, n_warm, n_grad, n_f, dt, solver, reforce, u, origin)
         return pred, win[n_warm + 1:]
 
     # -- validation -----------------------------------------------------------------
@@ -385,7 +392,7 @@ class TrajectoryFit(Fitter):
         with torch.no_grad():
             try:
                 pred, truth = self._run_windows(model, v["states"], v["forcing"], v["traj"], v["start"],
-                                                v["n_warm"], 0, v["n_after"], v["dt"], v["solver"], None)
+                                                v["n_warm"], 0, v["n_after"], v["dt"], v["solver"], None, v["times"])
                 pred = pred.to(torch.float64).numpy()
             except (RuntimeError, AssertionError, FloatingPointError, OverflowError):
                 # a forecast that makes the solver fail is a model with no skill, not a crash
@@ -469,9 +476,11 @@ class TrajectoryFit(Fitter):
         states = train.tensor(dtype)  # one copy, shared by validation when it runs on the training data
         v = dict(states=states if vset is train else vset.tensor(dtype), traj=vt, start=vs, n_warm=n_warm, n_after=n_val, dt=dt,
                  solver=ctx.solver, forcing=None if vset.forcing is None else torch.as_tensor(vset.forcing, dtype=dtype),
-                 scale=scale, x_std=x_std_np, n_loss=min(n_val, h1))
+                 scale=scale, x_std=x_std_np, n_loss=min(n_val, h1),
+                 times=torch.as_tensor(vset.absolute_times(), dtype=torch.float64))
         return _Problem(states=states,
                         forcing=None if train.forcing is None else torch.as_tensor(train.forcing, dtype=dtype),
+                        times=torch.as_tensor(train.absolute_times(), dtype=torch.float64),
                         x_std=torch.as_tensor(x_std_np, dtype=dtype), dt=dt, solver=ctx.solver,
                         n_traj=train.n_trajectories, n_times=train.n_times, n_warm=n_warm, n_grad=n_grad,
                         h0=h0, h1=h1, val=v)
@@ -575,7 +584,7 @@ class TrajectoryFit(Fitter):
         optimiser.zero_grad(set_to_none=True)
         if prob.ddp is None:
             pred, truth = self._run_windows(model, prob.states, prob.forcing, traj, start, prob.n_warm, prob.n_grad,
-                                            n_f, prob.dt, prob.solver, self.reforce_every)
+                                            n_f, prob.dt, prob.solver, self.reforce_every, prob.times)
             loss = (((pred - truth) / prob.x_std) ** 2).mean()
             batch_loss = loss.detach()
         else:  # this process's share of the same batch; DDP averages the gradients over the shares

@@ -21,13 +21,21 @@ __all__ = ["VectorField", "System"]
 class VectorField(nn.Module):
     """A right-hand side ``dx/dt = f(t, x[, u])`` acting on the last dimension.
 
-    Subclasses implement :meth:`forward`. ``t`` may be a float or a 0-d tensor;
-    ``x`` has shape ``(..., dim)``; ``u`` (forcing) has shape ``(..., n_forcing)``
-    or is ``None``. Parameters are plain floats stored as buffers so that the
-    module moves with ``.to(dtype)`` and exports cleanly.
+    Subclasses implement :meth:`forward`. ``t`` is the true time: a float or a
+    0-d tensor when the whole batch shares it, else a ``(..., 1)`` tensor (each
+    trajectory's own time) that broadcasts against ``x``; ``x`` has shape
+    ``(..., dim)``; ``u`` (forcing) has shape ``(..., n_forcing)`` or is ``None``.
+    Parameters are plain floats stored as buffers so that the module moves with
+    ``.to(dtype)`` and exports cleanly.
+
+    ``autonomous`` declares that the field ignores ``t``: unrolls then skip
+    shifting the solver's clock to each trajectory's true time (a small saving
+    per evaluation). It is ``False`` unless a class says otherwise, so a field
+    that does not declare it always receives the true time.
     """
 
     dim: int
+    autonomous: bool = False
 
     def forward(self, t, x: torch.Tensor, u: torch.Tensor | None = None) -> torch.Tensor:  # pragma: no cover
         raise NotImplementedError

@@ -13,6 +13,25 @@ The nominal field must be an ``nn.Module`` called as ``f(t, x)`` or ``f(t, x, u)
 (with forcing inputs ``u``) returning ``dx/dt`` with the shape of ``x``. Such a
 system has no truth generator: its data come from the user's file.
 
+``t`` is the true time of the data (the file's ``time`` column: each trajectory's
+own start time plus the time since), and it arrives in one of two forms: a float
+(or 0-d tensor) when every state in the batch shares one time, or a ``(B, 1)``
+tensor holding each trajectory's own time, which broadcasts against ``x`` of shape
+``(B, dim)``. A field that depends on ``t`` (a daily cycle) is written with torch
+operations that accept both, e.g.::
+
+    def forward(self, t, x):
+        heating = self.amplitude * torch.sin(self.omega * torch.as_tensor(t, dtype=x.dtype))  # () or (B, 1)
+        return torch.cat((-x[..., :1] + heating, x[..., :1] - x[..., 1:]), dim=-1)
+
+(slice components as ``x[..., i:i+1]`` next to ``t``: ``x[..., i]`` is ``(B,)`` and
+would broadcast against ``(B, 1)`` into ``(B, B)``). Continuous models see true
+time everywhere (targets, fitting windows, forecasts). Discrete models
+(``model=discrete``) are autonomous: their Ψ0 integrates ``f0`` over each Δt from
+``t = 0``, so use the continuous form for time-dependent physics. An exported
+simulator's physics sees the rollout's clock ``t0 + k·Δt`` when forced (see
+docs/exported-simulator.md).
+
 The config builds the nominal field here (``_recursive_: false``), so that a
 module that does not import is reported with how to put it on the Python path.
 """
@@ -96,8 +115,11 @@ def custom_system(nominal: nn.Module, state_names: Sequence[str], state_units: S
 
 
 def _check_output_shape(nominal: nn.Module, dim: int) -> None:
-    """Call the field once on a small batch of states and refuse an output of another shape.
+    """Call the field on a small batch of states and refuse an output of another shape.
 
+    Called twice: with a scalar ``t`` and with ``t`` of shape ``(2, 1)`` (one time
+    per state, as fitting and forecasts pass it); a field that works with the
+    first but not the second is refused with how to handle the tensor ``t``.
     Skipped for fields that need forcing inputs ``u`` (their shape is checked on
     the data, with the forcing, before fitting). A field that fails on these
     probe states is left to that data check too: the states here are arbitrary.
@@ -118,10 +140,25 @@ def _check_output_shape(nominal: nn.Module, dim: int) -> None:
             out = nominal(torch.zeros((), dtype=x.dtype), x)
     except Exception:  # judged on the data's own states later
         return
+    name = f"{type(nominal).__module__}.{type(nominal).__name__}"
     if not isinstance(out, torch.Tensor) or tuple(out.shape) != (2, dim):
         got = tuple(out.shape) if isinstance(out, torch.Tensor) else type(out).__name__
-        name = f"{type(nominal).__module__}.{type(nominal).__name__}"
         raise ConfigError(f"system.nominal ({name})", f"returned {got} for a batch of states of shape (2, {dim}) "
                           f"({dim} state_names); expected dx/dt with the shape of x",
                           "return a tensor shaped like x (..., dim), e.g. torch.stack([dX, dY, dZ], dim=-1), "
                           "and list one state name per component.")
+    t = torch.tensor([[0.5], [1.5]], dtype=x.dtype)
+    try:
+        with torch.no_grad():
+            out = nominal(t, x)
+        problem = None if isinstance(out, torch.Tensor) and tuple(out.shape) == (2, dim) else \
+            f"returned {tuple(out.shape) if isinstance(out, torch.Tensor) else type(out).__name__}"
+    except Exception as exc:
+        problem = f"failed ({type(exc).__name__}: {str(exc).strip().splitlines()[0][:160] if str(exc).strip() else ''})"
+    if problem is not None:
+        raise ConfigError(f"system.nominal ({name})", f"works with a scalar t but {problem} when t holds one time "
+                          f"per state (shape (2, 1)) for states of shape (2, {dim}); trajectories that start at "
+                          "different times reach the physics that way",
+                          "use torch operations on t (torch.sin(t), torch.where(t > a, ...)) rather than math or "
+                          "Python comparisons, and slice components as x[..., i:i+1] where they meet t, so that "
+                          "t of shape (B, 1) broadcasts against x of shape (B, dim).")

@@ -33,6 +33,8 @@ class Lorenz63Field(VectorField):
         beta: geometric factor β.
     """
 
+    autonomous = True
+
     dim = 3
 
     def __init__(self, sigma: float = 10.0, rho: float = 28.0, beta: float = 8.0 / 3.0):

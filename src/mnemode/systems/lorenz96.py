@@ -36,6 +36,8 @@ def _advection(x: torch.Tensor) -> torch.Tensor:
 class Lorenz96Field(VectorField):
     """Single-scale Lorenz-96 right-hand side on a ring of ``k`` sites with constant forcing ``F``."""
 
+    autonomous = True
+
     def __init__(self, k: int = 40, F: float = 8.0):
         super().__init__()
         if k < 4:
@@ -52,6 +54,8 @@ class Lorenz96Field(VectorField):
 
 class Lorenz96TwoScaleField(VectorField):
     """Two-scale Lorenz-96 right-hand side; state is ``[X (k), Y (k·j)]``."""
+
+    autonomous = True
 
     def __init__(self, k: int = 36, j: int = 10, F: float = 10.0,
                  coupling: float = 1.0, amplitude_ratio: float = 10.0, time_scale_ratio: float = 10.0):

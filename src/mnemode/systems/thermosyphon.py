@@ -54,6 +54,7 @@ class IdealWallLoopField(VectorField):
         rayleigh: loop Rayleigh number r.
     """
 
+    autonomous = True
     dim = 3
 
     def __init__(self, prandtl: float = 6.0, rayleigh: float = 50.0):
@@ -80,6 +81,7 @@ class HeatStoringWallLoopField(VectorField):
         wall_response_time: τ, wall heat capacity over total wall conductance.
     """
 
+    autonomous = True
     dim = 5
 
     def __init__(self, prandtl: float = 6.0, rayleigh: float = 50.0,
