@@ -391,6 +391,8 @@ def pooled_points(jobs: list[JobRecord]) -> list[dict]:
 def _plot(points: list[dict], unit: str, out_dir: Path, horizons=()) -> list[Path]:
     import matplotlib
 
+    from .assess.palette import line_styles
+
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
@@ -404,11 +406,15 @@ def _plot(points: list[dict], unit: str, out_dir: Path, horizons=()) -> list[Pat
         numeric = all(_as_float(v) is not None for v in xs)
         fig, ax = plt.subplots(figsize=(6.4, 4.2))
         lines = sorted({(p["model"], p["group"]) for p in pts}, key=lambda mg: [q["model"] for q in pts].index(mg[0]))
+        # mnemode's palette by role (physics-only orange dash-dot, oracle dotted, learned models in turn);
+        # the other swept settings of one model cycle through the learned models' colours after them
+        styles = line_styles([f"{m}|{g}" if g else m for m, g in lines])
         for model, group in lines:
             line_pts = sorted((p for p in pts if p["model"] == model and p["group"] == group), key=lambda p: p["x"])
             x = np.array([p["x"] for p in line_pts])
             centre, low, high = (np.array([p[k] for p in line_pts], dtype=float) for k in ("centre", "low", "high"))
-            line, = ax.plot(x, centre, marker="o", label=model + (f" ({group})" if group else ""))
+            style = styles[f"{model}|{group}" if group else model]
+            line, = ax.plot(x, centre, marker="o", ms=4, label=model + (f" ({group})" if group else ""), **style.kw())
             ax.fill_between(x, low, high, color=line.get_color(), alpha=0.2, linewidth=0)
             for p in line_pts:
                 seeds = [v for v in p["per_run"] if v is not None and math.isfinite(v)]
