@@ -222,3 +222,29 @@ def test_a_launcher_without_its_plugin_is_one_clear_error(monkeypatch):
     monkeypatch.setitem(sweep._LAUNCHER_PLUGINS, "workstation", ("hydra_plugins.not_installed_here", "some-plugin"))
     with pytest.raises(ConfigError, match=r"hydra/launcher=workstation: needs .*some-plugin.*mnemode\[cluster\]"):
         sweep.check_launcher(["hydra/launcher=workstation"])
+
+
+def test_readme_studies_section_reads_the_sweep_and_checks_round_trip(sweep, tmp_path):
+    """scripts/readme_studies.py: the pooled medians it prints are Python's ``statistics`` medians of
+    every forecast of every seed, it copies the plot, and --check agrees with what it wrote."""
+    import importlib.util
+    from pathlib import Path
+
+    script = Path(__file__).resolve().parents[1] / "scripts" / "readme_studies.py"
+    spec = importlib.util.spec_from_file_location("readme_studies", script)
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    root, runs = sweep
+    readme = tmp_path / "README.md"
+    readme.write_text("# x\n\n<!-- studies:begin -->\nold\n<!-- studies:end -->\n\ntail\n")
+    assert mod.main(["--scale", str(root), "--readme", str(readme)]) == 0
+    text = readme.read_text()
+    pooled = [t for n in ("job2", "job10") for t in runs[n][2]]
+    centre, low, high = _quartiles(pooled)
+    assert f"| 1.0 | {centre:.3g} [{low:.3g}, {high:.3g}] |" in text
+    assert "4 of 7 jobs finished" in text and "job3 (failed: system: τ is bad" in text
+    assert text.endswith("<!-- studies:end -->\n\ntail\n") and "old" not in text
+    assert (tmp_path / "docs" / "study_scale_separation.png").exists()
+    assert mod.main(["--scale", str(root), "--readme", str(readme), "--check"]) == 0
+    readme.write_text(text.replace(f"{centre:.3g}", "99"))
+    assert mod.main(["--scale", str(root), "--readme", str(readme), "--check"]) == 1
