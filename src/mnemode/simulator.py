@@ -52,7 +52,8 @@ from .archive import KEY_ENV, SIGNATURE_FILE, archive_problem, signature_matches
 from .errors import CheckpointError, ConfigError, DataError, MnemodeError
 
 __all__ = ["load_simulator", "Simulator", "EnvelopeWarning", "EnvelopeError", "NonFiniteStateError",
-           "rollout_to_file", "read_key", "read_forcing", "write_rollout_csv", "FORMAT_NAME", "FORMAT_VERSION", "FORMAT_VERSIONS", "MANIFEST_FILE", "STEP_FILE",
+           "rollout_to_file", "read_key", "read_forcing", "write_rollout_csv", "FORMAT_NAME", "FORMAT_VERSION",
+           "FORMAT_VERSIONS", "MANIFEST_FILE", "STEP_FILE",
            "WARM_UP_FILE", "INDEX_FILE"]
 
 FORMAT_NAME = "mnemode-simulator"

@@ -306,18 +306,19 @@ def export_simulator(model, out_dir, *, dt: float, solver: Solver | None = None,
     program. An unforced continuous model whose physics reads ``t``
     (:func:`~mnemode.hybrid.reads_time`: it does not declare ``autonomous = True``)
     gets the timed program ``(t, state)``, the interval starting at ``t``; every
-    other unforced model keeps the one-input program (``t = 0`` each interval). An :class:`~mnemode.solvers.Adaptive` solver (torchdiffeq, not
-    capturable) is replaced by RK4 with the step halved from Δt until one
-    interval agrees with it within 10× its tolerance; the choice is recorded
-    under ``model.solver_substitution``.
+    other unforced model keeps the one-input program (``t = 0`` each interval).
+    An :class:`~mnemode.solvers.Adaptive` solver (torchdiffeq, not capturable) is
+    replaced by RK4 with the step halved from Δt until one interval agrees with
+    it within 10× its tolerance; the choice is recorded under
+    ``model.solver_substitution``.
 
     Parity: the saved programs are reloaded and rolled out for ``parity_steps``
     steps against the eager model at batch 1 and ``parity_batch`` (forced: driven
     by a smooth forcing inside its envelope; programs that take ``t`` from
     ``parity_t0``, the eager model with ``simulate(..., time_origin=parity_t0)``
-    when timed); the max abs difference must be
-    ≤ 1e-6 in float64 (≤ 1e-3 for a float32 export). With ``check_float32``
-    (float64 exports) a float32 copy's figure is recorded under ``parity.float32``.
+    when timed); the max abs difference must be ≤ 1e-6 in float64 (≤ 1e-3 for a
+    float32 export). With ``check_float32`` (float64 exports) a float32 copy's
+    figure is recorded under ``parity.float32``.
 
     Example::
 
