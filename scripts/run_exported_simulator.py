@@ -12,7 +12,10 @@ entry that loading would unpickle (so a tampered file runs no code), loads
 state up from an observed history (CSV with a ``time`` column and one column per
 component, named as in the manifest; oldest row first), drives a forced
 simulator with the forcing file (``time`` plus one column per forcing input,
-linear between rows), rolls the state forward and writes the trajectory in the
+linear between rows), gives each program the time of its interval's start when
+its inputs (``programs.<role>.inputs`` in the manifest) begin with ``t`` (forced
+simulators, and timed ones whose physics reads t: the clock is ``--t0``, or the
+history's times), rolls the state forward and writes the trajectory in the
 same CSV layout as ``mnemode rollout``. States leaving the training envelope are
 reported on stderr; a state that turns non-finite stops the run.
 
@@ -137,7 +140,8 @@ def main(argv=None) -> None:
     p.add_argument("export_dir", type=Path)
     p.add_argument("--steps", type=int, required=True, help="observation intervals to run")
     p.add_argument("--x0", help="initial observed state, comma-separated")
-    p.add_argument("--t0", type=float, default=0.0, help="time of --x0 (default 0)")
+    p.add_argument("--t0", type=float, default=0.0,
+                   help="time of --x0 (default 0); physics that reads t sees t0 + k*dt on step k")
     p.add_argument("--history", type=Path,
                    help="observed history CSV to warm the hidden state up from (warm_up_steps + 1 rows)")
     p.add_argument("--forcing", type=Path, help="forcing CSV (time + forcing columns) over history and forecast")
@@ -193,8 +197,12 @@ def main(argv=None) -> None:
         u = torch.tensor(np.stack([np.interp(times, f[:, 0], f[:, 1 + j]) for j in range(len(fnames))], -1),
                          dtype=dtype)[:, None, :]
 
-    def call(prog, t, *xs_and_u):
-        return prog(*xs_and_u) if u is None else prog(torch.tensor(t, dtype=dtype), *xs_and_u)
+    def takes_t(role: str) -> bool:  # the signature the manifest records: (t, ...) or without t
+        inputs = manifest["programs"][role].get("inputs")
+        return "t" in inputs if inputs is not None else bool(fnames)
+
+    def call(prog, role, t, *xs_and_u):
+        return prog(torch.tensor(t, dtype=dtype), *xs_and_u) if takes_t(role) else prog(*xs_and_u)
 
     # Hidden state: the initial vector, then the warm-up program over the history.
     r = torch.tensor([manifest["hidden_init"]["initial_vector"] or []], dtype=dtype)
@@ -204,7 +212,7 @@ def main(argv=None) -> None:
         with torch.no_grad():
             for k in range(len(hist) - 1):
                 extra = () if u is None else (u[k], u[k + 1])
-                r = call(warm, hist[k, 0], h[k], h[k + 1], r, *extra)
+                r = call(warm, "warm_up", hist[k, 0], h[k], h[k + 1], r, *extra)
     base = 0 if hist is None else len(hist) - 1  # index of the start state in the forcing samples
 
     # Envelope guard: report the first excursion beyond margin × range.
@@ -217,7 +225,7 @@ def main(argv=None) -> None:
     with torch.no_grad():
         for k in range(1, args.steps + 1):
             extra = () if u is None else (u[base + k - 1], u[base + k])
-            s = call(step, times[base + k - 1], s, *extra)
+            s = call(step, "step", times[base + k - 1], s, *extra)
             if not bool(torch.isfinite(s).all()):
                 fail(f"rollout at step {k}", "the state became non-finite (the simulator blew up)",
                      "start inside the training envelope or shorten the rollout")

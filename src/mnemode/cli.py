@@ -511,8 +511,9 @@ def _rollout(rest: list[str]) -> None:
                              "input, covering the history and the forecast (linear between rows)")
     parser.add_argument("--steps", type=int, required=True, help="number of observation intervals")
     parser.add_argument("--t0", type=float, default=0.0,
-                        help="time of --x0 when there is no history (default 0); a forced simulator's physics "
-                             "sees t0 + k·Δt on step k (with --history, t0 is its last time)")
+                        help="time of --x0 when there is no history (default 0); the physics of a forced "
+                             "simulator, or of one whose physics reads t, sees t0 + k·Δt on step k (with "
+                             "--history, t0 is its last true time)")
     parser.add_argument("--cold-start", action="store_true",
                         help="let a model with memory start without a full warm-up (its hidden state then "
                              "starts from the untrained initial vector)")
@@ -543,13 +544,14 @@ def _rollout(rest: list[str]) -> None:
 
         kw = {"state_columns": list(sim.state_names)} if str(args.history).endswith(".csv") else {}
         hist = load_trajectories(args.history, expected_dim=len(sim.state_names), **kw)
-        history, t0 = hist.states, float(hist.times[-1])
+        hist_times = _history_times(hist, sim, args.history)
+        history, t0 = hist.states, float(hist_times[-1])
         if sim.hidden_size and hist.states.shape[0] < sim.history_length and not args.cold_start:
             raise MnemodeError(str(args.history), f"has {hist.states.shape[0]} rows per trajectory; a full warm-up "
                                f"of this model needs {sim.history_length} (warm_up_steps + 1)",
                                f"give at least {sim.history_length} observed rows, or pass --cold-start to accept "
                                "a hidden state that still remembers its start.")
-        times = np.concatenate((hist.times, t0 + sim.dt * np.arange(1, args.steps + 1)))
+        times = np.concatenate((hist_times, t0 + sim.dt * np.arange(1, args.steps + 1)))
     elif x0 is None:
         raise MnemodeError("rollout", "needs a starting point", "pass --x0 or --history.")
     else:
@@ -579,6 +581,26 @@ def _rollout(rest: list[str]) -> None:
                               overwrite=args.overwrite, t0=t0, cold_start=args.cold_start,
                               forcing=None if forcing is None else forcing[:, 0] if forcing.shape[1] == 1 else forcing)
     print(f"wrote {args.steps + 1} states to {out}")
+
+
+def _history_times(hist, sim, path):
+    """The history's true times, one clock for all its trajectories (the simulator's ``t0`` is one float).
+
+    A history whose trajectories keep different start times (``.npz`` with ``start_times``)
+    is refused for a simulator whose programs take ``t``; an autonomous one runs on the
+    history's own grid, as the times only label its output.
+    """
+    import numpy as np
+
+    absolute = hist.absolute_times()
+    if np.all(absolute == absolute[:, :1]):
+        return absolute[:, 0]
+    if sim.forced or sim.timed:
+        raise MnemodeError(str(path), "holds trajectories at different true times (its start_times differ), but "
+                           "this simulator's physics runs on one clock for the whole batch",
+                           "roll out trajectories with different start times one call at a time (one trajectory "
+                           "per history file).")
+    return hist.times
 
 
 def _correction(rest: list[str]) -> None:

@@ -105,9 +105,11 @@ COMMAND_DOCS: dict[str, CommandDoc] = {d.name: d for d in (
         "when a key is given, its signature checked) and roll it forward. A model with memory starts from an "
         "observed --history of warm_up_steps + 1 rows (hidden_init.history_length in the export's "
         "simulator.json), or from --x0 only with --cold-start; a forced simulator takes --forcing covering "
-        "the history and the forecast. Output times continue from the history's last time; the CSV layout "
-        "is the one every mnemode writer uses (docs/exported-simulator.md).",
-        "mnemode rollout SIMULATOR --steps N --out FILE (--history FILE | --x0 X [--cold-start]) [--forcing FILE]",
+        "the history and the forecast. Output times continue from the history's last true time (or --t0 with "
+        "--x0), which is also the clock a forced simulator's physics, or one whose physics reads t, runs on; "
+        "the CSV layout is the one every mnemode writer uses (docs/exported-simulator.md).",
+        "mnemode rollout SIMULATOR --steps N --out FILE (--history FILE | --x0 X [--t0 T] [--cold-start]) "
+        "[--forcing FILE]",
         (),
         "mnemode rollout RUN_DIR/export --history last_minutes.csv --steps 500 --out forecast.csv"),
     CommandDoc(

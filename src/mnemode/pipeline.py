@@ -484,7 +484,9 @@ def export_run(run: RunDir, cfg: DictConfig | None = None, model_name: str | Non
         dtype=dtype_of(cfg), onnx=bool(cfg.export.onnx if onnx is None else onnx),
         extra_manifest={"model_name": name, "envelope_margin": float(cfg.export.envelope_margin)},
         overwrite=overwrite, key=key, compiled=bool(cfg.export.get("compiled", False) if compiled is None
-                                                     else compiled), **forcing,
+                                                     else compiled),
+        parity_t0=float(np.min(data.train.absolute_times()[0])),  # physics that reads t: check it where the data are
+        **forcing,
     )
     if out_dir is None:
         from .fileio import write_json

@@ -18,7 +18,9 @@ Free-running with memory::
     s_0    = [x0 (default x_W), r_W],  s_{n+1} = step(s_n)
 
 A forced simulator's programs also take ``t`` and the forcing samples at both
-ends of each interval (linear between them, as in fitting).
+ends of each interval (linear between them, as in fitting); a timed simulator
+(unforced, physics that reads ``t``) has the step program ``(t, state)``. The
+manifest's ``programs.step.inputs`` is the signature the simulator calls.
 
 The guard watches the observed components, the forcing inputs and the hidden
 state: component ``i`` is inside when ``min_i − m·(max_i − min_i) ≤ x_i ≤
@@ -50,11 +52,15 @@ from .archive import KEY_ENV, SIGNATURE_FILE, archive_problem, signature_matches
 from .errors import CheckpointError, ConfigError, DataError, MnemodeError
 
 __all__ = ["load_simulator", "Simulator", "EnvelopeWarning", "EnvelopeError", "NonFiniteStateError",
-           "rollout_to_file", "read_key", "read_forcing", "write_rollout_csv", "FORMAT_NAME", "FORMAT_VERSION", "MANIFEST_FILE", "STEP_FILE",
+           "rollout_to_file", "read_key", "read_forcing", "write_rollout_csv", "FORMAT_NAME", "FORMAT_VERSION",
+           "FORMAT_VERSIONS", "MANIFEST_FILE", "STEP_FILE",
            "WARM_UP_FILE", "INDEX_FILE"]
 
 FORMAT_NAME = "mnemode-simulator"
-FORMAT_VERSION = 2  # 2: forced programs (t, state, u_a, u_b); autonomous exports still write 1
+FORMAT_VERSION = 3  # the newest this code reads and writes
+# An export records the oldest version whose readers run it: 1 autonomous programs (state), 2 forced
+# ones (t, state, u_a, u_b), 3 the timed step program (t, state) of unforced physics that reads t.
+FORMAT_VERSIONS = {"autonomous": 1, "forced": 2, "timed": 3}
 MANIFEST_FILE = "simulator.json"
 STEP_FILE = "simulator.pt2"
 WARM_UP_FILE = "warm_up.pt2"
@@ -265,6 +271,22 @@ def load_simulator(path, envelope_margin: float | None = None, on_envelope: str 
 
 # -- the simulator ----------------------------------------------------------------------
 
+def _step_kind(manifest: dict, forced: bool) -> str:
+    """``'autonomous'``, ``'timed'`` or ``'forced'``: from the step program's recorded inputs.
+
+    Manifests of format 1 written before programs listed their inputs are autonomous.
+    """
+    inputs = (manifest.get("programs", {}).get("step") or {}).get("inputs")
+    if not isinstance(inputs, dict):
+        return "forced" if forced else "autonomous"
+    names = tuple(inputs)
+    kinds = {("state",): "autonomous", ("t", "state"): "timed", ("t", "state", "u_a", "u_b"): "forced"}
+    if names not in kinds or (kinds[names] == "forced") != forced:
+        raise ValueError(f"step program inputs {list(names)} do not match a {'forced' if forced else 'unforced'} "
+                         "simulator (expected [state], [t, state] or [t, state, u_a, u_b])")
+    return kinds[names]
+
+
 def _bounds(env: dict, names, margin: float, dtype) -> tuple[torch.Tensor, torch.Tensor]:
     lo = np.array([env[n][0] for n in names], dtype=np.float64)
     hi = np.array([env[n][1] for n in names], dtype=np.float64)
@@ -287,8 +309,11 @@ class Simulator:
     the forecast's). Its physics sees the rollout's clock: ``t0`` at the start
     state (default 0), ``t0 + k·Δt`` at step ``k`` (plus the solver's sub-steps),
     the history at ``t0 − (T − 1)·Δt … t0``. ``t0`` is one float for the whole
-    batch; pass the start state's true time for physics that reads ``t``. An
-    unforced export's one-input program is autonomous (``t = 0`` at each interval).
+    batch; pass the start state's true time for physics that reads ``t``. A
+    timed simulator (``step_kind == 'timed'``: no forcing, physics that reads
+    ``t``) runs on the same clock: its step program takes ``t0 + k·Δt``. An
+    autonomous one's program restarts ``t`` at 0 each interval, so ``t0`` only
+    labels its output times.
     """
 
     def __init__(self, manifest: dict, step_program, warm_up_program=None, *, directory: Path | None = None,
@@ -311,6 +336,7 @@ class Simulator:
         forcing = manifest.get("forcing") or {}
         self.forcing_names: tuple[str, ...] = tuple(forcing.get("names", ()))
         self.forcing_units: tuple[str, ...] = tuple(forcing.get("units", ("",) * len(self.forcing_names)))
+        self.step_kind: str = _step_kind(manifest, self.forced)
         env = manifest["envelope"]
         self.envelope: dict[str, list[float]] = {k: list(v) for k, v in env["components"].items()}
         self.forcing_envelope: dict[str, list[float]] = {k: list(v) for k, v in (forcing.get("envelope") or {}).items()}
@@ -321,6 +347,11 @@ class Simulator:
     @property
     def forced(self) -> bool:
         return bool(self.forcing_names)
+
+    @property
+    def timed(self) -> bool:
+        """Whether the step program takes the rollout's clock ``t`` without forcing inputs."""
+        return self.step_kind == "timed"
 
     @property
     def history_length(self) -> int:
@@ -373,7 +404,7 @@ class Simulator:
 
     def __repr__(self) -> str:
         where = f" from {self.directory}" if self.directory is not None else ""
-        forced = f"; forcing {', '.join(self.forcing_names)}" if self.forced else ""
+        forced = f"; forcing {', '.join(self.forcing_names)}" if self.forced else ("; reads t" if self.timed else "")
         return (f"Simulator({', '.join(self.state_names)}{forced}; hidden_size={self.hidden_size}, dt={self.dt:g} "
                 f"{self.time_unit}, {self.manifest['dtype']}{where})").replace(" ,", ",")
 
@@ -540,8 +571,10 @@ class Simulator:
         return state[..., : self.dim], state[..., self.dim:]
 
     def _call_step(self, s: torch.Tensor, t: float, u: torch.Tensor | None, k: int) -> torch.Tensor:
-        if u is None:
+        if self.step_kind == "autonomous":
             return self._step(s)
+        if self.step_kind == "timed":
+            return self._step(torch.tensor(t, dtype=self.dtype), s)
         return self._step(torch.tensor(t, dtype=self.dtype), s, u[k], u[k + 1])
 
     def step(self, state, forcing=None, t: float = 0.0) -> torch.Tensor:
@@ -553,7 +586,7 @@ class Simulator:
                 or ``(D + d_r,)`` for one state.
             forcing: forced simulators only: the samples at ``t`` and ``t + Δt``,
                 ``(2, B, U)`` or ``(2, U)``.
-            t: the interval's start on the rollout's clock (forced simulators).
+            t: the interval's start on the rollout's clock (forced and timed simulators).
 
         Returns:
             The next full state ``(B, D + d_r)`` (``(D + d_r,)`` for one state).
@@ -687,7 +720,8 @@ class Simulator:
                 observation times, ``L = T + n_steps`` with a history of ``T``
                 samples, else ``n_steps + 1``.
             t0: the time of the start state on the rollout's clock, one float (forced
-                physics sees ``t0 + k·Δt`` at step ``k``; the history ends there).
+                and timed simulators' physics sees ``t0 + k·Δt`` at step ``k``; the
+                history ends there).
             cold_start: let a model with memory start from ``x0`` without a
                 warm-up or ``r0`` (its hidden state is then the initial vector).
 

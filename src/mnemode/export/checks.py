@@ -13,6 +13,7 @@ from ..errors import ConfigError
 from ..hybrid import HybridField, HybridFlowMap
 from ..simulator import MANIFEST_FILE
 from ..solvers import RK4, Adaptive, Euler
+from .programs import program_kind
 
 __all__ = ["ExportRequest", "check_request", "DEFAULT_ENVELOPE_MARGIN", "TOLERANCE"]
 
@@ -49,10 +50,17 @@ class ExportRequest:
     extra: dict
     onnx: bool
     overwrite: bool
+    kind: str = "autonomous"
+    parity_t0: float = 0.0
 
     @property
     def forced(self) -> bool:
         return bool(self.forcing_names)
+
+    @property
+    def reads_t(self) -> bool:
+        """Whether the step program takes ``t`` (timed and forced programs)."""
+        return self.kind != "autonomous"
 
 
 def _check_model(model, solver, dt, forced: bool) -> None:
@@ -108,7 +116,7 @@ def _names(values, n: int, what: str, distinct: bool = True) -> list[str]:
 
 def check_request(model, solver, out_dir, *, dt, state_names, state_units, envelope, forcing_names,
                   forcing_units, forcing_envelope, warm_up_steps, envelope_margin, dtype, parity_steps,
-                  parity_batch, extra_manifest, onnx, overwrite) -> ExportRequest:
+                  parity_batch, extra_manifest, onnx, overwrite, parity_t0=0.0) -> ExportRequest:
     """Check every argument of :func:`export_simulator` before any work; raise :class:`ConfigError`."""
     fnames = [str(n) for n in (forcing_names or [])]
     _check_model(model, solver, dt, bool(fnames))
@@ -141,9 +149,17 @@ def check_request(model, solver, out_dir, *, dt, state_names, state_units, envel
     margin = DEFAULT_ENVELOPE_MARGIN if margin is None else float(margin)
     if not (math.isfinite(margin) and margin >= 0):
         raise ConfigError("envelope_margin", f"is {margin}; expected ≥ 0", "use e.g. 0.1 (a tenth of each range).")
+    try:
+        t0 = float(parity_t0)
+    except (TypeError, ValueError):
+        t0 = math.nan
+    if not math.isfinite(t0):
+        raise ConfigError("parity_t0", f"is {parity_t0!r}; expected a finite time",
+                          "pass the true time the parity runs should start at (e.g. the data's first time).")
     out = Path(out_dir)
     if (out / MANIFEST_FILE).exists() and not overwrite:
         raise ConfigError(str(out), "already holds an exported simulator",
                           "choose another directory, or pass overwrite=True to replace it.")
     return ExportRequest(out, float(dt), names, units, env, fnames, funits, fenv, w, margin, dtype,
-                         int(parity_steps), int(parity_batch), extra, bool(onnx), bool(overwrite))
+                         int(parity_steps), int(parity_batch), extra, bool(onnx), bool(overwrite),
+                         program_kind(model, bool(fnames)), t0)

@@ -8,11 +8,13 @@ What is written to ``out_dir``:
     batch dimension dynamic. For a continuous model the fixed-step solver's
     sub-steps are inside (unrolled by ``torch.export``); for a discrete model it
     is the corrected flow map. A forced model's program also takes the time at
-    the interval's start and the forcing samples at both ends (see
-    :mod:`mnemode.export.programs`).
+    the interval's start and the forcing samples at both ends; an unforced
+    continuous model whose physics reads ``t`` gets the *timed* program
+    ``(t, state)`` (see :mod:`mnemode.export.programs`).
 ``warm_up.pt2`` (only when ``d_r > 0``)
     One warm-up interval, ``(x_n, x_{n+1}, r_n) ↦ r_{n+1}`` (forced: with
-    ``t, u_n, u_{n+1}``), exactly :func:`mnemode.hybrid.warm_up` on two samples.
+    ``t, u_n, u_{n+1}``; a timed model keeps this autonomous one, since a
+    warm-up evaluates no physics), exactly :func:`mnemode.hybrid.warm_up` on two samples.
     Looping it over the ``W`` intervals of an observed history of ``W + 1``
     samples gives the hidden state a forecast starts from.
 ``simulator.onnx`` / ``warm_up.onnx`` (optional)
@@ -39,7 +41,7 @@ import torch
 from ..archive import SIGNATURE_FILE, sign
 from ..errors import ConfigError, MnemodeError
 from ..fileio import atomic_path, write_json
-from ..hybrid import HybridFlowMap, reads_time
+from ..hybrid import HybridFlowMap
 from ..simulator import MANIFEST_FILE, STEP_FILE, WARM_UP_FILE
 from ..solvers import Solver
 from . import parity as _parity
@@ -136,6 +138,8 @@ def _io(req: ExportRequest, hidden: int) -> tuple[dict, dict]:
     width, dim, k = len(req.names) + hidden, len(req.names), len(req.forcing_names)
     step_in = {"state": ["batch", width]}
     warm_in = {"x_a": ["batch", dim], "x_b": ["batch", dim], "r": ["batch", hidden]}
+    if req.kind == "timed":  # the warm-up evaluates no physics: it stays autonomous
+        step_in = {"t": [], **step_in}
     if req.forced:
         step_in = {"t": [], **step_in, "u_a": ["batch", k], "u_b": ["batch", k]}
         warm_in = {"t": [], **warm_in, "u_a": ["batch", k], "u_b": ["batch", k]}
@@ -149,8 +153,12 @@ def capture_programs(f: Frozen, req: ExportRequest) -> Captured:
     full, x = f.signals.full()[:2].clone(), f.signals.starts[:2].clone()
     t0 = torch.tensor(0.0, dtype=req.dtype)
     u = f.signals.forcing
-    step_mod = StepProgram(m, f.solver, req.dt, req.forced)
-    step_ex = (t0, full, u[0, :2].clone(), u[1, :2].clone()) if req.forced else (full,)
+    step_mod = StepProgram(m, f.solver, req.dt, req.kind)
+    step_ex = (full,)
+    if req.kind == "timed":
+        step_ex = (t0, full)
+    elif req.forced:
+        step_ex = (t0, full, u[0, :2].clone(), u[1, :2].clone())
     programs = [Program("step", STEP_FILE, "torch.export", program_bytes(capture(step_mod, step_ex,
                         "model (one-step map)")), step_in, {"next_state": ["batch", len(req.names) + hidden]},
                         "state [x, r] at t -> state at t + dt (one observation interval)")]
@@ -171,26 +179,26 @@ def check_parity(f: Frozen, cap: Captured, req: ExportRequest, check_float32: bo
     progs = {p.role: reload(p.data) for p in cap.programs}
     batches = (1, req.parity_batch)
     rec, worst = _parity.measure_parity(f.model, f.solver, req.dt, progs["step"], progs.get("warm_up"), f.signals,
-                                        req.parity_steps, batches, max(req.warm_up_steps, 1))
+                                        req.parity_steps, batches, max(req.warm_up_steps, 1), req.kind,
+                                        req.parity_t0)
     tol = TOLERANCE[req.dtype]
     out = {"steps": req.parity_steps, "batches": list(batches), "starts": f.signals.starts_kind,
            "dtype": str(req.dtype).replace("torch.", ""), "tolerance": tol, **rec,
            "max_abs_diff": worst, "passed": worst <= tol}
+    if req.reads_t:
+        out["t0"] = req.parity_t0
+        out["clock"] = ("the program is called with t = t0 + k·dt; the eager model runs from t0 "
+                        + ("on the solver's clock" if req.forced else "(hybrid.simulate(..., time_origin=t0))"))
     if not worst <= tol:
-        timed = ""
-        if not req.forced and reads_time(getattr(f.model, "physics", None)):
-            timed = (" If the physics depends on t: an export without forcing inputs steps each interval from "
-                     "t = 0, so give the time-dependent drive to the model as a forcing column (forced programs "
-                     "take t).")
         raise ParityError("exported simulator",
                           f"differs from the eager model by {worst:.3g} (max abs over {req.parity_steps} steps, "
                           f"batches {list(batches)}); required ≤ {tol:g}",
                           "the model's forward probably depends on state torch.export cannot see (globals, "
                           "Python-side randomness, in-place buffer updates); make it a pure function of its "
-                          "inputs and buffers." + timed)
+                          "inputs and buffers.")
     if check_float32 and req.dtype == torch.float64:
         out["float32"] = _parity.float32_figure(f.model, f.solver, req.dt, f.signals, req.parity_steps,
-                                                req.parity_batch, req.forced)
+                                                req.parity_batch, req.kind, req.parity_t0)
     return out
 
 
@@ -206,7 +214,9 @@ def onnx_programs(cap: Captured, f: Frozen, req: ExportRequest) -> dict:
     t = torch.tensor(0.0, dtype=req.dtype)
     u = f.signals.forcing
     check = (f.signals.full().clone(),)
-    if req.forced:
+    if req.kind == "timed":
+        check = (t, check[0])
+    elif req.forced:
         check = (t, check[0], u[0].clone(), u[1].clone())
     rec["one_step_max_abs_diff_vs_pt2"] = onnx_check(data, reload(progs["step"].data), check)
     if cap.warm_module is not None:
@@ -284,7 +294,7 @@ def export_simulator(model, out_dir, *, dt: float, solver: Solver | None = None,
                      parity_x0=None, parity_batch: int = 8, envelope_margin: float | None = None,
                      check_float32: bool = True, overwrite: bool = False, forcing_names=(),
                      forcing_units=None, forcing_envelope: Mapping | None = None, key=None,
-                     compiled: bool = False) -> dict:
+                     compiled: bool = False, parity_t0: float = 0.0) -> dict:
     """Freeze a fitted hybrid model into programs plus a manifest, parity-checked.
 
     The exported one-step map is ``s_{n+1} = Φ_Δt(s_n)``, ``s = [x, r]``: for a
@@ -293,16 +303,22 @@ def export_simulator(model, out_dir, *, dt: float, solver: Solver | None = None,
     :class:`~mnemode.hybrid.HybridFlowMap` it is ``[Ψ0(x) + Δt·m(x, r), cell(x, r)]``.
     A forced model (``forcing_names`` given) is advanced with the forcing linear
     between the samples at the interval's ends, at the time ``t`` given to the
-    program. An :class:`~mnemode.solvers.Adaptive` solver (torchdiffeq, not
-    capturable) is replaced by RK4 with the step halved from Δt until one
-    interval agrees with it within 10× its tolerance; the choice is recorded
-    under ``model.solver_substitution``.
+    program. An unforced continuous model whose physics reads ``t``
+    (:func:`~mnemode.hybrid.reads_time`: it does not declare ``autonomous = True``)
+    gets the timed program ``(t, state)``, the interval starting at ``t``; every
+    other unforced model keeps the one-input program (``t = 0`` each interval).
+    An :class:`~mnemode.solvers.Adaptive` solver (torchdiffeq, not capturable) is
+    replaced by RK4 with the step halved from Δt until one interval agrees with
+    it within 10× its tolerance; the choice is recorded under
+    ``model.solver_substitution``.
 
     Parity: the saved programs are reloaded and rolled out for ``parity_steps``
     steps against the eager model at batch 1 and ``parity_batch`` (forced: driven
-    by a smooth forcing inside its envelope); the max abs difference must be
-    ≤ 1e-6 in float64 (≤ 1e-3 for a float32 export). With ``check_float32``
-    (float64 exports) a float32 copy's figure is recorded under ``parity.float32``.
+    by a smooth forcing inside its envelope; programs that take ``t`` from
+    ``parity_t0``, the eager model with ``simulate(..., time_origin=parity_t0)``
+    when timed); the max abs difference must be ≤ 1e-6 in float64 (≤ 1e-3 for a
+    float32 export). With ``check_float32`` (float64 exports) a float32 copy's
+    figure is recorded under ``parity.float32``.
 
     Example::
 
@@ -346,6 +362,9 @@ def export_simulator(model, out_dir, *, dt: float, solver: Solver | None = None,
             ≥ 16 bytes) into ``simulator.sig``.
         compiled: also compile the programs ahead of time into native packages
             (:func:`compiled_programs`; seconds per program, needs a C++ compiler).
+        parity_t0: the time the parity runs of a timed or forced program start
+            at (default 0); give a time inside the data's range when the physics
+            is defined only there.
 
     Returns:
         The manifest (a dict, also written to ``out_dir/simulator.json``).
@@ -359,7 +378,8 @@ def export_simulator(model, out_dir, *, dt: float, solver: Solver | None = None,
                         envelope=envelope, forcing_names=forcing_names, forcing_units=forcing_units,
                         forcing_envelope=forcing_envelope, warm_up_steps=warm_up_steps,
                         envelope_margin=envelope_margin, dtype=dtype, parity_steps=parity_steps,
-                        parity_batch=parity_batch, extra_manifest=extra_manifest, onnx=onnx, overwrite=overwrite)
+                        parity_batch=parity_batch, extra_manifest=extra_manifest, onnx=onnx, overwrite=overwrite,
+                        parity_t0=parity_t0)
     metrics, config, key = _plain(metrics, "metrics"), _plain(config, "config"), _key_bytes(key)
     if req.onnx:
         require_onnx()
@@ -370,7 +390,8 @@ def export_simulator(model, out_dir, *, dt: float, solver: Solver | None = None,
     # the manifest lists and hashes every entry of that list.
     onnx_rec = onnx_programs(captured, frozen, req) if req.onnx else None
     compiled_rec = compiled_programs(captured) if compiled else None
-    hidden_range = _parity.hidden_range(frozen.model, frozen.solver, req.dt, frozen.signals, req.parity_steps)
+    hidden_range = _parity.hidden_range(frozen.model, frozen.solver, req.dt, frozen.signals, req.parity_steps,
+                                        req.parity_t0)
     manifest = build_manifest(req, frozen=frozen.model, solver=frozen.solver, substitution=frozen.substitution,
                               r_init=frozen.r_init, programs=captured.programs, parity=parity, onnx_rec=onnx_rec,
                               hidden_range=hidden_range, metrics=metrics, config=config, time_unit=time_unit,

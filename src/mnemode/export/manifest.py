@@ -11,7 +11,7 @@ import numpy as np
 import torch
 
 from ..hybrid import HybridFlowMap
-from ..simulator import FORMAT_NAME, FORMAT_VERSION
+from ..simulator import FORMAT_NAME, FORMAT_VERSIONS
 from ..solvers import substeps_for
 from .checks import ExportRequest
 from .programs import Program
@@ -92,7 +92,15 @@ def hidden_init_record(req: ExportRequest, r_init, closure, warm_file: str | Non
     }
 
 
-def model_record(frozen, solver, substitution, dt: float, forced: bool) -> dict:
+_TIME_DEPENDENCE = {
+    "autonomous": "autonomous (the program restarts t at 0 each interval)",
+    "timed": ("the physics reads t: the step program takes t (the interval's start on the rollout's clock); "
+              "the warm-up program evaluates no physics and takes none"),
+    "forced": "the programs take t (the interval's start on the rollout's clock)",
+}
+
+
+def model_record(frozen, solver, substitution, dt: float, forced: bool, kind: str | None = None) -> dict:
     discrete = isinstance(frozen, HybridFlowMap)
     closure = frozen.closure
     physics = frozen.flow_map.field if discrete and frozen.flow_map is not None else getattr(frozen, "physics", None)
@@ -104,9 +112,10 @@ def model_record(frozen, solver, substitution, dt: float, forced: bool) -> dict:
                    else (repr(solver) if not discrete else None)),
         "solver_substitution": substitution,
         "forcing": "see the top-level 'forcing' entry" if forced else None,
-        "time_dependence": ("the programs take t (the interval's start on the rollout's clock)" if forced
-                            else "autonomous (the program restarts t at 0 each interval)"),
+        "time_dependence": _TIME_DEPENDENCE[kind or ("forced" if forced else "autonomous")],
     }
+    if kind == "timed":  # format 3; autonomous and forced manifests stay as their formats 1 and 2 wrote them
+        rec["step_program"] = "timed"
     if not discrete:
         rec["substeps_per_interval"] = substeps_for(dt, solver.step)
     return rec
@@ -166,14 +175,15 @@ def build_manifest(req: ExportRequest, *, frozen, solver, substitution, r_init, 
     warm = next((p.file for p in programs if p.role == "warm_up"), None)
     manifest = {
         "format": FORMAT_NAME,
-        "format_version": FORMAT_VERSION if req.forced else 1,  # readers of version 1 load autonomous exports
+        # the oldest version whose readers can run this export: 1 autonomous, 2 forced, 3 timed
+        "format_version": FORMAT_VERSIONS[req.kind],
         "created_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "state": state_record(req, hidden),
         "time": {"dt": req.dt, "unit": str(time_unit)},
         "forcing": forcing_record(req),
         "hidden_init": hidden_init_record(req, r_init, frozen.closure, warm, hidden),
         "programs": program_records(programs),
-        "model": model_record(frozen, solver, substitution, req.dt, req.forced),
+        "model": model_record(frozen, solver, substitution, req.dt, req.forced, req.kind),
         "normalisation": normalisation_record(frozen.closure),
         "envelope": envelope_record(req, hidden_range),
         "metrics": metrics,

@@ -4,7 +4,10 @@ Parity is the largest ``|program − eager|`` over a rollout of ``n`` observatio
 intervals (and over a warm-up), with places non-finite in both counted as agreeing.
 A forced model is driven in both by the same forcing samples ``U (n + 1, B, U)``:
 the eager model through :class:`mnemode.hybrid.Forcing` (piecewise linear), the
-program interval by interval with ``(t_k, U_k, U_{k+1})``.
+program interval by interval with ``(t_k, U_k, U_{k+1})``. A program that takes ``t``
+(timed or forced) is called with ``t_k = t0 + k·Δt``; the eager model runs from the
+same time: on the solver's clock from ``t0`` when forced, and with
+``simulate(..., time_origin=t0)`` when timed (the physics sees ``t0 + t``).
 """
 
 from __future__ import annotations
@@ -124,26 +127,43 @@ def max_diff(a: torch.Tensor, b: torch.Tensor) -> float:
     return float((a[fa] - b[fb]).abs().max())
 
 
-def program_rollout(step, s0: torch.Tensor, n: int, dt: float, forcing: torch.Tensor | None) -> torch.Tensor:
-    """States ``(n + 1, B, D + d_r)`` of ``n`` calls of a step program (forced: with ``t_k = k·Δt``)."""
+def program_rollout(step, s0: torch.Tensor, n: int, dt: float, forcing: torch.Tensor | None,
+                    kind: str | None = None, t0: float = 0.0) -> torch.Tensor:
+    """States ``(n + 1, B, D + d_r)`` of ``n`` calls of a step program.
+
+    ``kind`` is the program's (``None``: forced when ``forcing`` is given, else
+    autonomous); timed and forced programs get ``t_k = t0 + k·Δt``.
+    """
+    kind = kind or ("autonomous" if forcing is None else "forced")
     out, s = [s0], s0
     with torch.no_grad():
         for k in range(n):
-            if forcing is None:
+            t = torch.tensor(t0 + k * dt, dtype=s0.dtype)
+            if kind == "autonomous":
                 s = step(s)
+            elif kind == "timed":
+                s = step(t, s)
             else:
-                t = torch.tensor(k * dt, dtype=s0.dtype)
                 s = step(t, s, forcing[k], forcing[k + 1])
             out.append(s)
     return torch.stack(out)
 
 
-def eager_rollout(model, solver, s0: torch.Tensor, n: int, dt: float, forcing: torch.Tensor | None) -> torch.Tensor:
-    """The eager model's states ``(n + 1, B, D + d_r)`` from full states ``s0`` (t = 0 at ``s0``)."""
+def eager_rollout(model, solver, s0: torch.Tensor, n: int, dt: float, forcing: torch.Tensor | None,
+                  t0: float = 0.0) -> torch.Tensor:
+    """The eager model's states ``(n + 1, B, D + d_r)`` from full states ``s0`` at time ``t0``.
+
+    Forced: on the solver's clock from ``t0``, the forcing's first sample at ``t0``.
+    Unforced: ``time_origin=t0`` (ignored by physics that does not read ``t``).
+    """
     x0, r0 = s0[..., : model.dim], (s0[..., model.dim:] if model.hidden_size else None)
-    u = None if forcing is None else Forcing(0.0, dt, forcing)
     with torch.no_grad():
-        x, r = simulate(model, x0, n, dt, solver, r0=r0, return_hidden=True, forcing=u)
+        if forcing is None:
+            x, r = simulate(model, x0, n, dt, solver, r0=r0, return_hidden=True,
+                            time_origin=None if isinstance(model, HybridFlowMap) else t0)
+        else:
+            x, r = simulate(model, x0, n, dt, solver, r0=r0, t0=t0, return_hidden=True,
+                            forcing=Forcing(t0, dt, forcing))
     return torch.cat((x, r), -1) if model.hidden_size else x
 
 
@@ -162,12 +182,14 @@ def program_warm_up(program, history: torch.Tensor, r0: torch.Tensor, dt: float,
 
 
 def measure_parity(model, solver, dt: float, step_prog, wu_prog, signals: ParitySignals, steps: int,
-                   batches: tuple[int, ...], warm_steps: int) -> tuple[dict, float]:
+                   batches: tuple[int, ...], warm_steps: int, kind: str | None = None,
+                   t0: float = 0.0) -> tuple[dict, float]:
     """Max |program − eager| over ``steps`` intervals for each batch size, and over a warm-up.
 
+    The rollouts start at time ``t0`` (``kind`` as :func:`program_rollout` takes it).
     The warm-up history is a free run of the eager model over ``warm_steps``
     intervals (driven by the first samples of the forcing), the clock at
-    ``−warm_steps·Δt`` on its first sample as in the assessment's forecasts.
+    ``t0 − warm_steps·Δt`` on its first sample as in the assessment's forecasts.
     """
     w = warm_steps
     fore = None if signals.forcing is None else signals.forcing[w:]
@@ -175,31 +197,33 @@ def measure_parity(model, solver, dt: float, step_prog, wu_prog, signals: Parity
     for b in batches:
         s0 = signals.full(b)
         f = None if fore is None else fore[:, :b]
-        d = max_diff(program_rollout(step_prog, s0, steps, dt, f), eager_rollout(model, solver, s0, steps, dt, f))
+        d = max_diff(program_rollout(step_prog, s0, steps, dt, f, kind, t0),
+                     eager_rollout(model, solver, s0, steps, dt, f, t0))
         rec[f"batch_{b}"] = d
         worst = max(worst, d)
     out = {"step_program": {**rec, "max_abs_diff": worst}}
     if wu_prog is not None:
         hist_f = None if signals.forcing is None else signals.forcing[: w + 1]
-        history = eager_rollout(model, solver, signals.full(), w, dt, hist_f)[..., : model.dim]
+        t_first = t0 - w * dt
+        history = eager_rollout(model, solver, signals.full(), w, dt, hist_f, t_first)[..., : model.dim]
         if bool(torch.isfinite(history).all()):
             r0 = signals.r_init.expand(history.shape[1], -1)
-            t0 = -w * dt
-            u = None if hist_f is None else Forcing(t0, dt, hist_f)
+            u = None if hist_f is None else Forcing(t_first, dt, hist_f)
             with torch.no_grad():
-                ref = warm_up(model, history, dt, solver, r0=r0, t0=t0, forcing=u)
-            d = max_diff(program_warm_up(wu_prog, history, r0, dt, t0, hist_f), ref)
+                ref = warm_up(model, history, dt, solver, r0=r0, t0=t_first, forcing=u)
+            d = max_diff(program_warm_up(wu_prog, history, r0, dt, t_first, hist_f), ref)
             out["warm_up_program"] = {"intervals": w, f"batch_{history.shape[1]}": d, "max_abs_diff": d}
             worst = max(worst, d)
     return out, worst
 
 
-def hidden_range(model, solver, dt: float, signals: ParitySignals, steps: int) -> list[list[float]] | None:
+def hidden_range(model, solver, dt: float, signals: ParitySignals, steps: int,
+                 t0: float = 0.0) -> list[list[float]] | None:
     """Per-component ``[min, max]`` of the hidden state over the eager parity runs (``None`` if memoryless)."""
     if not model.hidden_size:
         return None
     f = None if signals.forcing is None else signals.forcing[-(steps + 1):]
-    traj = eager_rollout(model, solver, signals.full(), steps, dt, f)[..., model.dim:]
+    traj = eager_rollout(model, solver, signals.full(), steps, dt, f, t0)[..., model.dim:]
     traj = traj.reshape(-1, model.hidden_size)
     traj = traj[torch.isfinite(traj).all(-1)]
     if traj.shape[0] == 0:
@@ -208,7 +232,7 @@ def hidden_range(model, solver, dt: float, signals: ParitySignals, steps: int) -
 
 
 def float32_figure(frozen, solver, dt: float, signals: ParitySignals, steps: int, batch: int,
-                   forced: bool) -> dict:
+                   kind: str, t0: float = 0.0) -> dict:
     """Parity of a float32 copy of the step program (captured in memory, not written).
 
     Measured at batch ``batch`` over ``steps`` steps against float32 eager, plus
@@ -221,14 +245,16 @@ def float32_figure(frozen, solver, dt: float, signals: ParitySignals, steps: int
                         None if signals.forcing is None else signals.forcing.float())
     full32 = s32.full()
     ex = (full32[:2].clone(),)
-    if forced:
+    if kind == "timed":
+        ex = (torch.tensor(0.0), full32[:2].clone())
+    elif kind == "forced":
         ex = (torch.tensor(0.0), full32[:2].clone(), s32.forcing[0, :2].clone(), s32.forcing[1, :2].clone())
-    prog = capture(StepProgram(m32, solver, dt, forced), ex, "model (float32 copy)").module()
-    rec, _ = measure_parity(m32, solver, dt, prog, None, s32, steps, (batch,), 0)
+    prog = capture(StepProgram(m32, solver, dt, kind), ex, "model (float32 copy)").module()
+    rec, _ = measure_parity(m32, solver, dt, prog, None, s32, steps, (batch,), 0, kind, t0)
     f64 = None if signals.forcing is None else signals.forcing[:2]
     f32 = None if s32.forcing is None else s32.forcing[:2]
-    one32 = eager_rollout(m32, solver, full32, 1, dt, f32)[-1].double()
-    one64 = eager_rollout(frozen, solver, signals.full(), 1, dt, f64)[-1]
+    one32 = eager_rollout(m32, solver, full32, 1, dt, f32, t0)[-1].double()
+    one64 = eager_rollout(frozen, solver, signals.full(), 1, dt, f64, t0)[-1]
     return {**rec["step_program"], "steps": steps,
             "one_step_max_abs_diff_vs_float64": float((one32 - one64).abs().max()),
             "note": "float32 step program vs float32 eager (recorded, not required)"}

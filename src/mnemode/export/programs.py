@@ -1,18 +1,27 @@
 """The programs an export holds: one observation interval and one warm-up interval, and their capture.
 
-Step program (state ``s = [x, r]``, ``D + d_r`` components)::
+Step program (state ``s = [x, r]``, ``D + d_r`` components), one of three kinds
+(:data:`PROGRAM_KINDS`)::
 
     autonomous:  s_{n+1} = Φ_Δt(s_n)                       inputs (state)
+    timed:       s_{n+1} = Φ_Δt(s_n; t_n)                  inputs (t, state)
     forced:      s_{n+1} = Φ_Δt(s_n; t_n, u_n, u_{n+1})    inputs (t, state, u_a, u_b)
 
 For a forced model the forcing inside the interval is linear between the samples
 ``u_a = u(t_n)`` and ``u_b = u(t_n + Δt)`` -- the piecewise-linear interpolation of
 :class:`mnemode.hybrid.Forcing` that fitting and assessment use -- and the physics
 and closure see the time ``t`` of the rollout's clock (``t_n`` at the interval's
-start). An autonomous program restarts ``t`` at 0 each interval.
+start). A timed program is the unforced model whose physics reads ``t``
+(:func:`mnemode.hybrid.reads_time`): the solver's clock starts the interval at the
+given ``t`` (a 0-d tensor, one clock for the batch, as in the forced program). An
+autonomous program restarts ``t`` at 0 each interval; it is the program of every
+model whose physics ignores ``t`` (declared ``autonomous``), of data-only models
+and of discrete models.
 
 Warm-up program: ``(x_n, x_{n+1}, r_n) ↦ r_{n+1}`` (forced: ``(t, x_a, x_b, r, u_a, u_b)``),
-:func:`mnemode.hybrid.warm_up` on a two-sample history.
+:func:`mnemode.hybrid.warm_up` on a two-sample history. A warm-up evaluates no
+physics (the observations stand in for ``x``) and closures do not see ``t``, so a
+timed model keeps the autonomous warm-up program.
 """
 
 from __future__ import annotations
@@ -24,10 +33,28 @@ import torch
 from torch import nn
 
 from ..errors import ConfigError
-from ..hybrid import Driven, HybridFlowMap, warm_up
+from ..hybrid import Driven, HybridField, HybridFlowMap, reads_time, warm_up
 from ..solvers import Solver
 
-__all__ = ["IntervalForcing", "StepProgram", "WarmUpInterval", "Program", "capture", "program_bytes", "reload"]
+__all__ = ["PROGRAM_KINDS", "program_kind", "IntervalForcing", "StepProgram", "WarmUpInterval", "Program", "capture",
+           "program_bytes", "reload"]
+
+
+PROGRAM_KINDS = ("autonomous", "timed", "forced")
+
+
+def program_kind(model: nn.Module, forced: bool) -> str:
+    """The step program a model exports with: ``'forced'``, ``'timed'`` or ``'autonomous'``.
+
+    Timed: a continuous model without forcing inputs whose physics may depend on ``t``
+    (it does not declare ``autonomous = True``). Discrete models integrate Ψ0 from
+    ``t = 0`` every interval and so are autonomous whatever their physics.
+    """
+    if forced:
+        return "forced"
+    if isinstance(model, HybridField) and reads_time(model.physics):
+        return "timed"
+    return "autonomous"
 
 
 class IntervalForcing(nn.Module):
@@ -53,6 +80,11 @@ class _AutonomousStep(nn.Module):
         return self.solver.advance(self.model, 0.0, state, self.dt)
 
 
+class _TimedStep(_AutonomousStep):
+    def forward(self, t: torch.Tensor, state: torch.Tensor) -> torch.Tensor:
+        return self.solver.advance(self.model, t, state, self.dt)
+
+
 class _ForcedStep(_AutonomousStep):
     def forward(self, t: torch.Tensor, state: torch.Tensor, u_a: torch.Tensor, u_b: torch.Tensor) -> torch.Tensor:
         driven = Driven(self.model, IntervalForcing(t, self.dt, u_a, u_b))
@@ -71,9 +103,19 @@ class _ForcedWarmUp(_AutonomousStep):
                        forcing=IntervalForcing(t, self.dt, u_a, u_b))
 
 
-def StepProgram(model: nn.Module, solver: Solver | None, dt: float, forced: bool = False) -> nn.Module:
-    """One observation interval of a hybrid model: inputs ``(state)``, or ``(t, state, u_a, u_b)`` when forced."""
-    return (_ForcedStep if forced else _AutonomousStep)(model, solver, dt)
+_STEPS = {"autonomous": _AutonomousStep, "timed": _TimedStep, "forced": _ForcedStep}
+
+
+def StepProgram(model: nn.Module, solver: Solver | None, dt: float, kind: str = "autonomous") -> nn.Module:
+    """One observation interval of a hybrid model, with the inputs of its ``kind``.
+
+    ``(state)`` when autonomous, ``(t, state)`` when timed, ``(t, state, u_a, u_b)``
+    when forced (see :func:`program_kind`).
+    """
+    if kind not in _STEPS:
+        raise ConfigError("program kind", f"is {kind!r}; expected one of {PROGRAM_KINDS}",
+                          "pass the kind program_kind() returns.")
+    return _STEPS[kind](model, solver, dt)
 
 
 def WarmUpInterval(model: nn.Module, solver: Solver | None, dt: float, forced: bool = False) -> nn.Module:
