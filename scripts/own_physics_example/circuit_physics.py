@@ -19,6 +19,10 @@ from torch import nn
 class VanDerPolCircuit(nn.Module):
     """Nominal model: state (v, i); μ is the nonlinearity (gain) parameter."""
 
+    # The field does not read t: saying so keeps mnemode on its time-free path (no per-trajectory
+    # clock in fitting, the one-input step program in the export). Leave it out if f0 uses t.
+    autonomous = True
+
     def __init__(self, mu: float = 1.0):
         super().__init__()
         self.mu = float(mu)
