@@ -104,13 +104,13 @@ def results_section(metrics: dict, status: dict, figure: str = FIGURE, main: str
     return "\n".join(lines) + "\n"
 
 
-def replace_section(readme: str, section: str) -> str:
-    """``readme`` with the text between the markers replaced by ``section``."""
-    if BEGIN not in readme or END not in readme:
-        raise SystemExit(f"README has no {BEGIN} ... {END} markers around its results; add them once.")
-    head, rest = readme.split(BEGIN, 1)
-    _, tail = rest.split(END, 1)
-    return f"{head}{BEGIN}\n{section}{END}{tail}"
+def replace_section(readme: str, section: str, begin: str = BEGIN, end: str = END) -> str:
+    """``readme`` with the text between the markers ``begin`` and ``end`` replaced by ``section``."""
+    if begin not in readme or end not in readme:
+        raise SystemExit(f"README has no {begin} ... {end} markers around this section; add them once.")
+    head, rest = readme.split(begin, 1)
+    _, tail = rest.split(end, 1)
+    return f"{head}{begin}\n{section}{end}{tail}"
 
 
 def run_demo(extra: list[str]) -> Path:

@@ -28,6 +28,7 @@ sys.path.insert(0, str(ROOT / "scripts"))
 
 from check_scale_separation import KEY as TAU_KEY  # noqa: E402
 from check_scale_separation import _validity  # noqa: E402
+from readme_results import replace_section  # noqa: E402
 
 BEGIN, END = "<!-- studies:begin -->", "<!-- studies:end -->"
 STUDIES = {
@@ -114,14 +115,6 @@ def study_section(name: str, sweep: Path, jobs, points, figure: str) -> str:
     return "\n".join(lines) + "\n"
 
 
-def replace_section(readme: str, section: str) -> str:
-    if BEGIN not in readme or END not in readme:
-        raise SystemExit(f"README has no {BEGIN} ... {END} markers around its studies; add them once.")
-    head, rest = readme.split(BEGIN, 1)
-    _, tail = rest.split(END, 1)
-    return f"{head}{BEGIN}\n{section}{END}{tail}"
-
-
 def main(argv: list[str] | None = None) -> int:
     from mnemode.study import pooled_points, read_jobs, summarise
 
@@ -146,7 +139,7 @@ def main(argv: list[str] | None = None) -> int:
             if plot is not None:
                 copies.append((plot, args.readme.parent / figure))
     readme = args.readme.read_text()
-    updated = replace_section(readme, "\n".join(parts))
+    updated = replace_section(readme, "\n".join(parts), BEGIN, END)
     if args.check:
         if updated != readme:
             print(f"{args.readme} differs from the sweeps; run scripts/readme_studies.py without --check")
