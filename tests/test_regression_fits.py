@@ -12,8 +12,8 @@ import torch
 from torch import nn
 
 from mnemode.validity import validity_times
-from mnemode.closures import (Recurrent, GaussianProcessClosure, MLPClosure, RandomFeatureClosure,
-                              RingLocalClosure)
+from mnemode.closures import (Recurrent, GaussianProcessClosure, MLPClosure, PolynomialClosure,
+                              RandomFeatureClosure, RingLocalClosure)
 from mnemode.data import TrajectorySet, generate
 from mnemode.errors import ConfigError
 from mnemode.fitting import (DerivativeFit, FitContext, FlowMapFit, derivative_targets,
@@ -161,7 +161,9 @@ def test_forcing_inputs_reach_the_physics_and_the_closure(fitter):
     functools.partial(RingLocalClosure, 5, inner=functools.partial(MLPClosure, width=4, epochs=2), neighbours=1),
     functools.partial(RingLocalClosure, 5, inner=functools.partial(GaussianProcessClosure, max_points=50,
                                                                    n_restarts=0, max_iter=20), neighbours=1),
-], ids=["gp", "rff", "mlp", "ring-mlp", "ring-gp"])
+    functools.partial(PolynomialClosure, 5, degree=2),
+    functools.partial(RingLocalClosure, 5, inner=functools.partial(PolynomialClosure, degree=3), neighbours=1),
+], ids=["gp", "rff", "mlp", "ring-mlp", "ring-gp", "poly", "ring-poly"])
 def test_closure_contract_rebuild_and_load(build, dtype, tmp_path):
     """Every memoryless closure: rebuilt from its constructor arguments, it loads a fitted state dict
     (torch.save / torch.load(weights_only=True)) and gives identical outputs, in float32 and float64."""

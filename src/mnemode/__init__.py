@@ -26,6 +26,7 @@ _LAZY = {
     "Closure": "closures", "RegressionFittable": "closures", "LinearReadout": "closures", "Memory": "closures",
     "Recurrent": "closures", "DiscreteRecurrent": "closures",
     "RandomFeatureClosure": "closures", "MLPClosure": "closures", "GaussianProcessClosure": "closures",
+    "PolynomialClosure": "closures",
     "RingLocalClosure": "closures", "RecurrentClosure": "closures", "ReservoirClosure": "closures",
     "ReservoirFlowClosure": "closures", "GRUFlowClosure": "closures",
     # hybrid models

@@ -6,10 +6,11 @@ __all__ = ["Closure", "Scaling", "RegressionFittable", "LinearReadout", "Memory"
 
 from .gaussian_process import GaussianProcessClosure
 from .mlp import MLPClosure
+from .polynomial import PolynomialClosure
 from .random_features import RandomFeatureClosure
 from .ring import RingLocalClosure
 
-__all__ += ["GaussianProcessClosure", "MLPClosure", "RandomFeatureClosure", "RingLocalClosure"]
+__all__ += ["GaussianProcessClosure", "MLPClosure", "PolynomialClosure", "RandomFeatureClosure", "RingLocalClosure"]
 
 from .discrete import GRUFlowClosure
 from .recurrent import RecurrentClosure

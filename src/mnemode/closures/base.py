@@ -56,8 +56,16 @@ def resolve_dtype(dtype) -> torch.dtype:
 class Scaling(nn.Module):
     """Affine maps at a closure's boundary: ``x̃ = (x − in_mean)/in_std``, ``m = out_offset + out_scale·y``.
 
-    All four are buffers (saved in checkpoints, not trained).
+    All four are buffers (saved in checkpoints, not trained). With ``applied = False``
+    both maps are the identity whatever the buffers hold: a closure inside a
+    :class:`~mnemode.closures.RingLocalClosure` sees inputs the ring has already
+    normalised and returns normalised outputs, and skipping four tensor operations per
+    call is a tenth of a small corrected simulator's step (the buffers stay, so its
+    checkpoints keep their keys).
     """
+
+    #: whether :meth:`inputs` and :meth:`outputs` apply the buffers (see the class docstring)
+    applied: bool = True
 
     def __init__(self, in_dim: int, out_dim: int, dtype=None):
         super().__init__()
@@ -76,13 +84,13 @@ class Scaling(nn.Module):
         return self
 
     def inputs(self, x: torch.Tensor) -> torch.Tensor:
-        return (x - self.in_mean) / self.in_std
+        return (x - self.in_mean) / self.in_std if self.applied else x
 
     def outputs(self, y: torch.Tensor) -> torch.Tensor:
-        return self.out_offset + self.out_scale * y
+        return self.out_offset + self.out_scale * y if self.applied else y
 
     def outputs_inverse(self, m: torch.Tensor) -> torch.Tensor:
-        return (m - self.out_offset) / self.out_scale
+        return (m - self.out_offset) / self.out_scale if self.applied else m
 
 
 class Closure(nn.Module, metaclass=ABCMeta):

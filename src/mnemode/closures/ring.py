@@ -88,15 +88,22 @@ class RingLocalClosure(Closure, RegressionFittable):
                               f"and in_dim={width}", "use _partial_: true so the ring supplies the sizes.")
         if not isinstance(closure, RegressionFittable):
             raise ConfigError("closure.inner", f"{type(closure).__name__} has no regression fit",
-                              "use GaussianProcessClosure, RandomFeatureClosure or MLPClosure.")
+                              "use GaussianProcessClosure, RandomFeatureClosure, MLPClosure or PolynomialClosure.")
         self.inner = closure
+        closure.scaling.applied = False  # the ring normalises; the inner's scaling stays the identity
         self.scaling = Scaling(self.dim, self.dim, self.dtype)
-        self.register_buffer("offsets", torch.arange(-self.neighbours, self.neighbours + 1), persistent=False)
 
     def neighbourhoods(self, z: torch.Tensor) -> torch.Tensor:
-        """``(..., K)`` → ``(..., K, 2n+1)``: entry ``[..., k, j] = z[..., (k + j − n) mod K]``."""
-        idx = (torch.arange(self.dim, device=z.device).unsqueeze(-1) + self.offsets.to(z.device)) % self.dim
-        return z[..., idx]
+        """``(..., K)`` → ``(..., K, 2n+1)``: entry ``[..., k, j] = z[..., (k + j − n) mod K]``.
+
+        The ring padded by ``n`` sites on each side, then a sliding window (a view): no
+        index tensor, so a compiled step reads the sites directly instead of through a gather.
+        """
+        n = self.neighbours
+        if n == 0:
+            return z.unsqueeze(-1)
+        padded = torch.cat((z[..., self.dim - n:], z, z[..., :n]), dim=-1)
+        return padded.unfold(-1, 2 * n + 1, 1)
 
     def correction(self, x: torch.Tensor, r: torch.Tensor | None = None,
                    u: torch.Tensor | None = None) -> torch.Tensor:
@@ -113,7 +120,8 @@ class RingLocalClosure(Closure, RegressionFittable):
 
         ``inputs`` and ``targets`` are ``(N, K)`` in physical units, normalised
         through ``self.scaling`` (pooled; the regression fitters set it). The inner
-        closure's own scaling is reset to the identity (its data are already normalised).
+        closure's own scaling is reset to the identity (its data are already normalised)
+        and is not applied in :meth:`correction` either (``Scaling.applied``).
 
         Returns:
             the inner closure's diagnostics.

@@ -40,7 +40,7 @@ from .targets import derivative_targets, flow_map_targets
 
 __all__ = ["DerivativeFit", "FlowMapFit", "set_scaling", "relative_error"]
 
-_REGRESSION_CLOSURES = "GaussianProcessClosure, RandomFeatureClosure, MLPClosure or RingLocalClosure"
+_REGRESSION_CLOSURES = "GaussianProcessClosure, RandomFeatureClosure, MLPClosure, PolynomialClosure or RingLocalClosure"
 
 
 def set_scaling(closure: Closure, inputs: torch.Tensor, targets: torch.Tensor, floor: float = 1e-12) -> None:
