@@ -19,6 +19,7 @@ from __future__ import annotations
 import argparse
 import datetime as dt
 import json
+import math
 import shutil
 import sys
 from pathlib import Path
@@ -62,6 +63,11 @@ def sweep_minutes(jobs) -> float | None:
     return (max(ends) - min(starts)).total_seconds() / 60.0
 
 
+def _unit_phrase(unit: str) -> str:
+    """``s`` or ``time units`` as they are; a described unit as "units of the <description>"."""
+    return unit if unit == "time units" or len(unit.split()) == 1 else f"units of the {unit}"
+
+
 def _models_in_order(points) -> list[str]:
     order = []
     for p in points:
@@ -90,8 +96,8 @@ def study_section(name: str, sweep: Path, jobs, points, figure: str) -> str:
     took = f"{minutes:.0f} minutes" if minutes is not None else "time not recorded"
     lines = [f"**{title}.** {len(finished)} of {len(jobs)} jobs finished ({len(seeds)} seeds per setting); "
              f"the sweep took {took} on this project's 2-core machine with two jobs at a time "
-             "(`hydra/launcher=workstation`, one torch thread each). Median validity time in "
-             f"{unit} [25th, 75th percentile], all forecasts of all seeds pooled:", ""]
+             "(`hydra/launcher=workstation`, one torch thread each). Median validity time "
+             f"[25th, 75th percentile] in {_unit_phrase(unit)}, all forecasts of all seeds pooled:", ""]
     lines.append(f"| {label} | " + " | ".join(models) + " |")
     lines.append("|---|" + "---|" * len(models))
     for v in values:
@@ -101,6 +107,11 @@ def study_section(name: str, sweep: Path, jobs, points, figure: str) -> str:
                                                   for j in failed) + "."]
     lines += ["", f"![{title}: validity time against {label}]({figure})"]
     if name == "scale":
+        wins = [v for v in values if (_validity(points, "memory", float(v)) or 0)
+                > (_validity(points, "memoryless", float(v)) or math.inf)]
+        if wins:
+            lines += ["", f"The memory model's median first exceeds the memoryless model's at {label} = {wins[0]}; "
+                          f"below that a memoryless closure does as well or better."]
         checks = [("τ = 0.01: memoryless / oracle", "memoryless", "oracle", 0.01, 0.8),
                   ("τ = 1: memory / memoryless", "memory", "memoryless", 1.0, 2.0)]
         out = []
