@@ -24,9 +24,10 @@ from mnemode.study import pooled_points, read_jobs
 KEY = "system.wall_response_time"
 
 
-def _validity(points, model: str, tau: float) -> float | None:
+def _validity(points, model: str, tau: float, key: str = KEY) -> float | None:
+    """Seeds-pooled median validity time of ``model`` where the swept ``key`` equals ``tau``."""
     for p in points:
-        if (p["parameter"], p["metric"], p["model"]) == (KEY, "validity_time", model) and \
+        if (p["parameter"], p["metric"], p["model"]) == (key, "validity_time", model) and \
                 abs(float(p["value"]) - tau) < 1e-12:
             return p["centre"]
     return None
