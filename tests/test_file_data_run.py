@@ -74,7 +74,7 @@ def test_run_on_three_files_with_own_columns_grids_and_a_gap(tank_files):
     cwd = tank_files
     r = mnemode("run", *COMMON, "data.train=tank/train.csv", "data.val=tank/val.csv", "data.test=tank/test.csv",
                 "closure=random_features", "fit=derivative", "compare=none", "model.name=memoryless", "warm_up=0",
-                "solver.step=0.05", "assess.n_starts=6", "assess.horizon=5", "assess.free_run_length=10",
+                "solver.step=0.05", "assess.n_starts=6", "assess.horizon=5", "assess.free_run_length=10", "assess.stability_length=0",
                 "assess.acf_max_lag=1", cwd=cwd)
     assert r.returncode == 0, r.stderr[-3000:]
     run = Path(next(s for s in r.stdout.splitlines() if s.startswith("run directory:")).split(":", 1)[1].strip())

@@ -53,7 +53,7 @@ def test_forced_slab_run_export_rollout_and_plain_torch_script(tmp_path):
                 "system.state_names=[T1,T2]", "system.state_units=[K,K]", "data=file", f"data.path={csv}",
                 "data.forcing_columns=[load]", "+data.forcing_units=[W]", "closure=reservoir_filter_bank", "fit=readout_ridge",
                 "compare=none", "warm_up=2.0", "assess.n_starts=6", "assess.horizon=5",
-                "assess.free_run_length=10", "assess.acf_max_lag=1", "progress=false", "solver.step=0.05",
+                "assess.free_run_length=10", "assess.stability_length=0", "assess.acf_max_lag=1", "progress=false", "solver.step=0.05",
                 "name=slab", "hydra.run.dir=runs/slab", cwd=tmp_path)
     assert r.returncode == 0, r.stderr[-3000:]
     run = tmp_path / "runs" / "slab"

@@ -160,7 +160,7 @@ def test_bring_your_own_physics_example_runs_end_to_end(tmp_path):
     example = ROOT / "scripts" / "own_physics_example"
     env = dict(os.environ, MNEMODE_RUNS=str(tmp_path / "runs"))
     r = subprocess.run([sys.executable, str(example / "run_example.py"), "progress=false", "assess.n_starts=8",
-                        "assess.free_run_length=20"], cwd=tmp_path, env=env, capture_output=True, text=True,
+                        "assess.free_run_length=20", "assess.stability_length=0", "assess.stability_length=0"], cwd=tmp_path, env=env, capture_output=True, text=True,
                        timeout=600)
     assert r.returncode == 0, r.stderr[-3000:]
     assert "recommendation: derivative targets" in r.stdout and "recommendation: memoryless ->" in r.stdout
@@ -223,7 +223,7 @@ def test_forcing_inputs_reach_physics_and_closure_through_the_main_job(tmp_path)
     r = mnemode("run", "system=custom", "system.nominal._target_=circuit_physics.DrivenVanDerPolCircuit",
                 "system.state_names=[v,i]", "data=file", f"data.path={csv}", "data.forcing_columns=[drive]",
                 "closure=random_features", "fit=derivative", "compare=none", "model.name=memoryless",
-                "warm_up=0", "assess.n_starts=10", "assess.horizon=20", "assess.free_run_length=20",
+                "warm_up=0", "assess.n_starts=10", "assess.horizon=20", "assess.free_run_length=20", "assess.stability_length=0",
                 "assess.acf_max_lag=1", "progress=false", "solver.step=0.05",
                 cwd=tmp_path, env_extra={"PYTHONPATH": str(example)})
     assert r.returncode == 0, r.stderr[-3000:]

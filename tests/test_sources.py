@@ -191,7 +191,7 @@ def test_the_advised_fit_wins_on_validity_at_coarse_sampling(tmp_path):
                           "+compare.derivative.physics=true", "compare.derivative.closure.n_features=200", "data.dt=0.2", "data.n_train=3", "data.n_val=1",
                           "data.n_test=2", "data.duration=60", "data.test_duration=40",
                           f"data.cache_dir={tmp_path / 'cache'}", "warm_up=0", "export.enabled=false",
-                          "progress=false", "assess.n_starts=10", "assess.horizon=12", "assess.free_run_length=10",
+                          "progress=false", "assess.n_starts=10", "assess.horizon=12", "assess.free_run_length=10", "assess.stability_length=0",
                           "assess.acf_max_lag=1"])
     run = run_pipeline(cfg, tmp_path / "run")
     system = make_system(cfg)

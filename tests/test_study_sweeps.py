@@ -26,7 +26,7 @@ pytestmark = pytest.mark.slow
 TINY = ["experiment=memoryless_regime", "progress=false", "compare=none", "export.enabled=false",
         "data.n_train=2", "data.n_val=1", "data.n_test=1", "data.duration=10", "data.test_duration=10",
         "data.spin_up=5", "data.solver_step=0.01", "closure.n_features=50",
-        "assess.n_starts=3", "assess.horizon=2", "assess.free_run_length=5", "assess.acf_max_lag=0.5"]
+        "assess.n_starts=3", "assess.horizon=2", "assess.free_run_length=5", "assess.stability_length=0", "assess.acf_max_lag=0.5"]
 
 
 def mnemode(*args, cwd: Path, timeout=1200):
