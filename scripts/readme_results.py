@@ -113,6 +113,15 @@ def replace_section(readme: str, section: str, begin: str = BEGIN, end: str = EN
     return f"{head}{begin}\n{section}{end}{tail}"
 
 
+def check_section(path: Path, readme: str, updated: str, source: str, fix: str) -> int:
+    """``--check``: 0 when README already holds what ``source`` gives, else 1 with the command to run."""
+    if updated != readme:
+        print(f"{path} differs from {source}; run {fix}")
+        return 1
+    print(f"{path} matches {source}")
+    return 0
+
+
 def run_demo(extra: list[str]) -> Path:
     """Run the demo main job (``mnemode run``) and return its run directory."""
     r = subprocess.run([sys.executable, "-m", "mnemode", "run", "progress=false", *extra], cwd=ROOT,
@@ -143,11 +152,8 @@ def main(argv: list[str] | None = None) -> int:
     readme = args.readme.read_text()
     updated = replace_section(readme, results_section(metrics, status, args.figure, main_model))
     if args.check:
-        if updated != readme:
-            print(f"{args.readme} differs from {run}; run scripts/readme_results.py --run-dir {run}")
-            return 1
-        print(f"{args.readme} matches {run}")
-        return 0
+        return check_section(args.readme, readme, updated, str(run),
+                             f"scripts/readme_results.py --run-dir {run}")
     args.readme.write_text(updated)
     source = run / "figures" / "validity_times.png"
     if source.exists():

@@ -29,7 +29,7 @@ sys.path.insert(0, str(ROOT / "scripts"))
 
 from check_scale_separation import KEY as TAU_KEY  # noqa: E402
 from check_scale_separation import _validity  # noqa: E402
-from readme_results import replace_section  # noqa: E402
+from readme_results import check_section, replace_section  # noqa: E402
 
 BEGIN, END = "<!-- studies:begin -->", "<!-- studies:end -->"
 STUDIES = {
@@ -170,11 +170,7 @@ def main(argv: list[str] | None = None) -> int:
     readme = args.readme.read_text()
     updated = replace_section(readme, "\n".join(parts), BEGIN, END)
     if args.check:
-        if updated != readme:
-            print(f"{args.readme} differs from the sweeps; run scripts/readme_studies.py without --check")
-            return 1
-        print(f"{args.readme} matches the sweeps")
-        return 0
+        return check_section(args.readme, readme, updated, "the sweeps", "scripts/readme_studies.py without --check")
     args.readme.write_text(updated)
     for source, target in copies:
         target.parent.mkdir(parents=True, exist_ok=True)

@@ -252,8 +252,6 @@ def simulate(model: HybridField | HybridFlowMap, x0: torch.Tensor, n_steps: int,
         if solver is None:
             raise ValueError("simulating a continuous hybrid model needs a solver")
         origin = physics_time(time_origin, tuple(x0.shape[:-1])) if reads_time(model.physics) else None
-        if isinstance(origin, torch.Tensor):
-            origin = origin.to(x0.device)
         traj = solver.unroll(drive(model, forcing, origin), s0, t0, dt, n_steps)
     x = traj[..., : model.dim]
     return (x, traj[..., model.dim:]) if return_hidden else x

@@ -94,9 +94,11 @@ def derivative_targets(ts: TrajectorySet, physics: nn.Module | None, scheme: str
     index, deriv = finite_difference(ts.states, dt, scheme)
     x = torch.as_tensor(ts.states[index], dtype=torch.float64)
     u = None if ts.forcing is None else torch.as_tensor(ts.forcing[index], dtype=torch.float64)
-    true_t = ts.absolute_times()
+    # the true clock only for physics that may read it (one float per sample otherwise)
+    clock = ts.absolute_times() if reads_time(physics) else None
     with torch.no_grad():
-        f0 = torch.stack([_call(physics, physics_time(true_t[i], (ts.n_trajectories,)), x[j],
+        f0 = torch.stack([_call(physics, float(ts.times[i]) if clock is None
+                                else physics_time(clock[i], (ts.n_trajectories,)), x[j],
                                 None if u is None else u[j]) for j, i in enumerate(index)])
     targets = torch.as_tensor(deriv, dtype=torch.float64) - f0
     inputs = x if u is None else torch.cat((x, u), dim=-1)
