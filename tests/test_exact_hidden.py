@@ -47,17 +47,17 @@ def _scipy_warm_up(c: RecurrentClosure, history: np.ndarray, dt: float, r0: np.n
     z = (history - mean) / std  # (T, n)
     T = z.shape[0]
 
-    def rhs(t, r):
-        s = min(t / dt, T - 1 - 1e-12)
-        i = int(s)
-        w = s - i
+    def rhs(t, r, i):
+        w = t / dt - i
         zt = z[i] * (1 - w) + z[i + 1] * w
         return A @ r + B @ zt + b
 
-    times = np.arange(T) * dt
-    sol = solve_ivp(rhs, (0.0, times[-1]), r0, method="DOP853", rtol=1e-12, atol=1e-14, t_eval=times,
-                    first_step=dt / 8, max_step=dt)  # max_step: never straddle a kink of z(t)
-    return sol.y.T
+    # one solve per interval: z(t) has a kink at every sample, which a step must not straddle
+    out = [np.asarray(r0, dtype=np.float64)]
+    for i in range(T - 1):
+        sol = solve_ivp(rhs, (i * dt, (i + 1) * dt), out[-1], method="DOP853", rtol=1e-12, atol=1e-14, args=(i,))
+        out.append(sol.y[:, -1])
+    return np.stack(out)
 
 
 @pytest.mark.parametrize("coupling", [True, False])
@@ -85,7 +85,7 @@ def test_rk4_warm_up_converges_to_exact_at_fourth_order():
     dt = 0.1
     with torch.no_grad():
         exact = c.exact_warm_up(history, dt)
-        errs = [float((warm_up(model, history, dt, RK4(dt / k)) - exact).abs().max()) for k in (1, 2, 4)]
+        errs = [float((warm_up(model, history, dt, RK4(dt / k), exact=False) - exact).abs().max()) for k in (1, 2, 4)]
     slopes = np.log2(np.array(errs[:-1]) / np.array(errs[1:]))
     assert np.all(slopes > 3.7), (errs, slopes)
 

@@ -215,7 +215,7 @@ def test_euler_unroll_gradient_matches_central_differences():
                 down = loss(*params).item()
                 flat[i] = old
                 fd = (up - down) / (2 * h)
-                assert abs(fd - g.view(-1)[i].item()) <= 1e-5 * max(1.0, abs(fd)), (fd, g.view(-1)[i].item())
+                assert abs(fd - g.reshape(-1)[i].item()) <= 1e-5 * max(1.0, abs(fd)), (fd, g.reshape(-1)[i].item())
 
 
 def test_direct_and_adjoint_gradients_agree():

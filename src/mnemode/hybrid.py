@@ -37,7 +37,7 @@ from torch import nn
 from .closures.base import Closure, DiscreteRecurrent, Recurrent
 from .solvers import FlowMap, Solver
 
-__all__ = ["HybridField", "HybridFlowMap", "Forcing", "Driven", "drive", "physics_time", "reads_time", "simulate",
+__all__ = ["HybridField", "AffineHybridField", "PreparedMemorylessField", "HybridFlowMap", "Forcing", "Driven", "drive", "physics_time", "reads_time", "simulate",
            "warm_up"]
 
 
@@ -114,6 +114,31 @@ class HybridField(nn.Module):
     def hidden_size(self) -> int:
         return 0 if self.closure is None else self.closure.hidden_size
 
+    def prepared(self) -> "HybridField | AffineHybridField":
+        """This field in the form one unroll should evaluate: equal values, fewer operations.
+
+        A closure that is affine in the state (:meth:`~mnemode.closures.RecurrentClosure.affine_rates`:
+        the leaky hidden field with a linear readout) has its scalings and
+        weights folded once into one matrix, and every solver stage then costs
+        the physics plus one matrix product (:class:`AffineHybridField`); a
+        memoryless closure with a folded correction
+        (:meth:`~mnemode.closures.RandomFeatureClosure.prepared_correction`) is
+        called directly (:class:`PreparedMemorylessField`). Other closures return
+        the field itself. The folded form is built from the
+        parameters, so gradients reach them; build it again after they change
+        (each :func:`simulate` does).
+        """
+        if self.closure is None:
+            return self
+        affine = getattr(self.closure, "affine_rates", lambda: None)()
+        if affine is not None:
+            return AffineHybridField(self.physics, *affine, self.dim)
+        if self.hidden_size == 0:
+            correction = getattr(self.closure, "prepared_correction", lambda: None)()
+            if correction is not None:
+                return PreparedMemorylessField(self.physics, correction, self.dim)
+        return self
+
     def split(self, state: torch.Tensor):
         return state[..., : self.dim], state[..., self.dim:]
 
@@ -130,6 +155,42 @@ class HybridField(nn.Module):
         if not self.hidden_size:
             return dx
         return torch.cat((dx, self.closure.hidden_field(x, r, u)), dim=-1)
+
+
+class AffineHybridField:
+    """``d[x, r]/dt = [f0(t, x[, u]), 0] + [x, r] @ M + v``: a hybrid field whose closure is affine in the state.
+
+    Made by :meth:`HybridField.prepared` for one unroll; it evaluates the same
+    field as the :class:`HybridField` it came from (to rounding) with a few
+    tensor operations per stage instead of dozens.
+    """
+
+    def __init__(self, physics, M: torch.Tensor, v: torch.Tensor, dim: int):
+        self.physics, self.M, self.v, self.dim = physics, M, v, int(dim)
+        self.hidden_size = M.shape[0] - self.dim
+
+    def __call__(self, t, state: torch.Tensor, u: torch.Tensor | None = None) -> torch.Tensor:
+        lin = state @ self.M + self.v if state.dim() != 2 else torch.addmm(self.v, state, self.M)
+        if self.physics is None:
+            return lin
+        x = state[..., : self.dim]
+        dx = self.physics(t, x, u) if u is not None else self.physics(t, x)
+        return lin + torch.nn.functional.pad(dx, (0, self.hidden_size))
+
+
+class PreparedMemorylessField:
+    """``dx/dt = f0(t, x[, u]) + m(x)`` with ``m`` a closure's prepared correction (see :meth:`HybridField.prepared`)."""
+
+    hidden_size = 0
+
+    def __init__(self, physics, correction: Callable, dim: int):
+        self.physics, self.correction, self.dim = physics, correction, int(dim)
+
+    def __call__(self, t, x: torch.Tensor, u: torch.Tensor | None = None) -> torch.Tensor:
+        m = self.correction(x)
+        if self.physics is None:
+            return m
+        return (self.physics(t, x, u) if u is not None else self.physics(t, x)) + m
 
 
 class Driven(nn.Module):
@@ -252,7 +313,9 @@ def simulate(model: HybridField | HybridFlowMap, x0: torch.Tensor, n_steps: int,
         if solver is None:
             raise ValueError("simulating a continuous hybrid model needs a solver")
         origin = physics_time(time_origin, tuple(x0.shape[:-1])) if reads_time(model.physics) else None
-        traj = solver.unroll(drive(model, forcing, origin), s0, t0, dt, n_steps)
+        # a compiled solver step traces the plain field (it fuses the operations itself)
+        field = model if getattr(solver, "compile", False) else model.prepared()
+        traj = solver.unroll(drive(field, forcing, origin), s0, t0, dt, n_steps)
     x = traj[..., : model.dim]
     return (x, traj[..., model.dim:]) if return_hidden else x
 
@@ -271,19 +334,39 @@ class _ObservedDriving(nn.Module):
         return self.closure.hidden_field(x, r, u)
 
 
+def _exact_warm_up(closure, history, dt, r, t0, first_grad, forcing):
+    """:func:`warm_up` for a closure that solves its observation-driven hidden field exactly."""
+    u = None
+    if forcing is not None:  # the forcing at the samples: linear between them, like the observations
+        u = torch.stack([forcing(t0 + i * dt) for i in range(history.shape[0])]).to(history.dtype)
+    if first_grad > 0:
+        with torch.no_grad():
+            r = closure.exact_warm_up(history[: first_grad + 1], dt, r0=r,
+                                      forcing=None if u is None else u[: first_grad + 1])
+        r = r.detach()
+        history = history[first_grad:]
+        u = None if u is None else u[first_grad:]
+    return closure.exact_warm_up(history, dt, r0=r, forcing=u)
+
+
 def warm_up(model: HybridField | HybridFlowMap, history: torch.Tensor, dt: float,
             solver: Solver | None = None, r0: torch.Tensor | None = None, t0: float = 0.0,
-            grad_steps: int | None = None, forcing: Callable | None = None) -> torch.Tensor | None:
+            grad_steps: int | None = None, forcing: Callable | None = None,
+            exact: bool | None = None) -> torch.Tensor | None:
     """Hidden state after being driven by observed ``history`` ``(T, *batch, dim)``.
 
     The observations stand in for the model's ``x``: ``r`` follows
-    ``dr/dt = g(x_obs(t), r)`` (continuous; ``x_obs`` linear between samples) or
+    ``dr/dt = g(x_obs(t), r)`` (continuous; ``x_obs`` linear between samples;
+    solved exactly, whatever the solver, when the closure can, as the leaky
+    hidden field of :class:`~mnemode.closures.RecurrentClosure` can) or
     ``r_{n+1} = cell(x_n, r_n)`` (discrete) from ``r0`` (the closure's initial
     hidden state by default) over the ``T − 1`` intervals, the first sample at
     time ``t0``. ``forcing`` is ``u(t)`` for a forced model. Returns ``None`` for a
     memoryless model. The physics is not evaluated here (the observations stand in
     for ``x``), so a warm-up needs no time origin. ``grad_steps`` keeps the graph only for the last that many
-    intervals (truncated backpropagation saves time on long warm-ups).
+    intervals (truncated backpropagation saves time on long warm-ups). ``exact``
+    (``None``: wherever the closure offers it) chooses the exact solution over the
+    solver's steps; ``False`` steps with the solver even where an exact one exists.
     """
     if model.hidden_size == 0:
         return None
@@ -291,6 +374,10 @@ def warm_up(model: HybridField | HybridFlowMap, history: torch.Tensor, dt: float
     r = closure.initial_hidden(history.shape[1:-1], history.dtype) if r0 is None else r0
     n = history.shape[0] - 1
     first_grad = 0 if grad_steps is None else max(0, n - grad_steps)
+    if exact is None:
+        exact = isinstance(model, HybridField) and getattr(closure, "drives_exactly", False)
+    if exact:
+        return _exact_warm_up(closure, history, dt, r, t0, first_grad, forcing)
 
     def advance(i, r):
         if isinstance(model, HybridFlowMap):

@@ -106,6 +106,36 @@ class RandomFeatureClosure(Closure, RegressionFittable):
         phi = self.features(self.scaling.inputs(self._join(x, u)))
         return self.scaling.outputs(phi @ self.readout.to(phi.dtype))
 
+    def prepared_correction(self):
+        """``m(x)`` with the scalings, length-scale and feature weight folded into two matrices, or ``None``.
+
+        ``m = cos(x W₁ + b₁) W₂ + b₂`` evaluates the same correction as
+        :meth:`correction` (to rounding) in three tensor operations; built from the
+        readout (differentiable), valid until it changes. Closures that see
+        forcing inputs return ``None`` (the plain correction is used).
+        """
+        if self.forcing_dim or self.in_dim != self.dim:
+            return None
+        sc, A = self.scaling, self.readout
+        dtype = A.dtype
+        W = self.weights.to(dtype) / torch.as_tensor(self.lengthscale, dtype=dtype)
+        bias = self.phases.to(dtype)
+        if sc.applied:
+            W = W / sc.in_std
+            bias = bias - W @ sc.in_mean
+            o_scale, o_off = sc.out_scale, sc.out_offset
+        else:
+            o_scale, o_off = torch.ones_like(sc.out_scale), torch.zeros_like(sc.out_offset)
+        W1, W2 = W.T.contiguous(), math.sqrt(2.0 / self.n_features) * A[:-1] * o_scale
+        b2 = o_off + o_scale * A[-1]
+
+        def correction(x):
+            if x.dim() == 2:
+                return torch.addmm(b2, torch.cos(torch.addmm(bias, x, W1)), W2)
+            return torch.cos(x @ W1 + bias) @ W2 + b2
+
+        return correction
+
     def _solve(self, xt, yt, ell, ridge):
         phi = self.features(xt, ell)
         return ridge_solve(phi, yt, ridge * xt.shape[0], penalise_last=False)

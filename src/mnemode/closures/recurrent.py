@@ -74,6 +74,16 @@ def _check_choice(name: str, value, choices) -> None:
         raise ConfigError(name, f"is {value!r}; expected one of {choices}", f"set {name} to one of {choices}.")
 
 
+def _candidate_bounds(name: str, value) -> list[tuple[float, float]]:
+    """One ``(τ_min, τ_max)`` pair, or a list of them (candidates a ridge fit chooses among)."""
+    try:
+        nested = len(value) > 0 and all(hasattr(v, "__len__") and not isinstance(v, str) for v in value)
+    except TypeError:
+        nested = False
+    pairs = [_init_bounds(name, v) for v in value] if nested else [_init_bounds(name, value)]
+    return pairs
+
+
 def _init_bounds(name: str, bounds) -> tuple[float, float]:
     try:
         lo, hi = (float(b) for b in bounds)
@@ -82,6 +92,14 @@ def _init_bounds(name: str, bounds) -> tuple[float, float]:
                           "write e.g. time_constants: [0.1, 10.0].") from None
     log_spaced((lo, hi), 1)  # validates
     return lo, hi
+
+
+def _taylor_phi(z: torch.Tensor, k: int) -> torch.Tensor:
+    """``φ_k(z) = Σ_j z^j/(j + k)!`` for ``j = 0..6`` (Horner), ``k ∈ {1, 2}``."""
+    out = torch.full_like(z, 1.0 / math.factorial(6 + k))
+    for j in range(5, -1, -1):
+        out = out * z + 1.0 / math.factorial(j + k)
+    return out
 
 
 class _MLP(nn.Module):
@@ -113,7 +131,11 @@ class RecurrentClosure(Recurrent, LinearReadout):
             ``input_init='filter_bank'``, 8 otherwise.
         form: ``'leaky'``, ``'tanh'`` or ``'gated'``.
         time_constants: ``(τ_min, τ_max)``; initial time constants are log-spaced
-            over this range (time units of the data).
+            over this range (time units of the data). A list of such pairs gives
+            candidates: the closure starts with the first, and a ridge
+            initialisation (:class:`~mnemode.fitting.ReadoutRidgeFit`, alone or
+            before :class:`~mnemode.fitting.TrajectoryFit`) keeps the one whose
+            validation forecasts stay valid longest (leaky form, linear readout).
         readout: ``'linear'`` or ``'mlp'``.
         readout_width: hidden width of the MLP readout.
         initial_hidden: the state before any warm-up: ``'zeros'``, ``'learned'``
@@ -151,7 +173,12 @@ class RecurrentClosure(Recurrent, LinearReadout):
                               "use a memoryless closure for hidden_size 0.")
         self.hidden_size = int(hidden_size)
         self.form, self.readout, self.readout_width = form, readout, int(readout_width)
-        self.time_constants = _init_bounds("time_constants", time_constants)
+        self.time_constant_candidates = _candidate_bounds("time_constants", time_constants)
+        self._bounds = self.time_constant_candidates[0]
+        if len(self.time_constant_candidates) > 1 and (form != "leaky" or readout != "linear"):
+            raise ConfigError("time_constants", f"lists {len(self.time_constant_candidates)} candidate ranges, but "
+                              f"only the leaky form with a linear readout chooses among them (got form={form!r}, "
+                              f"readout={readout!r})", "give one pair, e.g. time_constants: [0.1, 10.0].")
         self.initial_hidden_mode, self.input_init, self.coupling = initial_hidden, input_init, bool(coupling)
         self.seed = int(seed)
         n_in = self.in_dim
@@ -172,10 +199,7 @@ class RecurrentClosure(Recurrent, LinearReadout):
         def randn(*shape, scale=1.0):
             return (torch.randn(shape, generator=gen, dtype=torch.float64) * scale).to(dtype)
 
-        if input_init == "filter_bank":
-            taus = log_spaced(self.time_constants, H // n_in).repeat_interleave(n_in)
-        else:
-            taus = log_spaced(self.time_constants, H)
+        taus = self._taus(self._bounds)
         rates = (1.0 / taus)
         if form == "leaky":
             # A = diag(λ)·A_rel, B = diag(λ)·B_rel, b = λ ⊙ b_rel with the initial rates λ = 1/τ fixed:
@@ -187,9 +211,7 @@ class RecurrentClosure(Recurrent, LinearReadout):
             else:
                 self.log_rate = nn.Parameter(torch.zeros(H, dtype=dtype))
             if input_init == "filter_bank":
-                # state k integrates input k mod n_in with time constant τ_k: dr_k/dt = (x̃_j − r_k)/τ_k
-                B = torch.zeros(H, n_in, dtype=torch.float64)
-                B[torch.arange(H), torch.arange(H) % n_in] = 1.0
+                B = self._filter_bank_inputs()
             else:
                 B = torch.randn((H, n_in), generator=gen, dtype=torch.float64) / math.sqrt(n_in)
             self.B_rel = nn.Parameter(B.to(dtype))
@@ -204,7 +226,7 @@ class RecurrentClosure(Recurrent, LinearReadout):
                 self.W_z = nn.Parameter(randn(H, H, scale=0.1 / math.sqrt(H)))
                 self.U_z = nn.Parameter(randn(H, n_in, scale=0.1 / math.sqrt(n_in)))
                 # σ(b_z)·2/τ_min = 1/τ_i at the start
-                p = (self.time_constants[0] / (2.0 * taus)).clamp(1e-6, 1 - 1e-6)
+                p = (self._bounds[0] / (2.0 * taus)).clamp(1e-6, 1 - 1e-6)
                 self.b_z = nn.Parameter(torch.log(p / (1 - p)).to(dtype))
         if readout == "linear":
             self.C = nn.Parameter(randn(self.dim, H, scale=0.1 / math.sqrt(H)))
@@ -214,6 +236,51 @@ class RecurrentClosure(Recurrent, LinearReadout):
             self.mlp = _MLP(n_in + H, self.readout_width, self.dim, gen).to(dtype)
         if initial_hidden == "learned":
             self.r0 = nn.Parameter(torch.zeros(H, dtype=dtype))
+
+    def _taus(self, bounds) -> torch.Tensor:
+        """The initial time constants (float64): log-spaced over ``bounds``, per input for a filter bank."""
+        if self.input_init == "filter_bank":
+            return log_spaced(bounds, self.hidden_size // self.in_dim).repeat_interleave(self.in_dim)
+        return log_spaced(bounds, self.hidden_size)
+
+    def _filter_bank_inputs(self) -> torch.Tensor:
+        """State k integrates input k mod n_in with time constant τ_k: ``dr_k/dt = (x̃_j − r_k)/τ_k``."""
+        H, n_in = self.hidden_size, self.in_dim
+        B = torch.zeros(H, n_in, dtype=torch.float64)
+        B[torch.arange(H), torch.arange(H) % n_in] = 1.0
+        return B
+
+    def set_time_constants(self, bounds) -> None:
+        """Leaky form: start the hidden field afresh with time constants log-spaced over ``bounds``.
+
+        The rates become ``1/τ``, the learned time-constant factors and the offset
+        return to their initial values and a filter bank's input weights to its
+        integrators; the readout is left for a fit to set. Used to try each of
+        :attr:`time_constant_candidates`.
+        """
+        if self.form != "leaky":
+            raise ConfigError("form", f"is {self.form!r}; only the leaky form's time constants can be reset",
+                              "give one pair of time_constants for the tanh and gated forms.")
+        bounds = _init_bounds("time_constants", bounds)
+        with torch.no_grad():
+            self.rate.copy_(1.0 / self._taus(bounds))
+            if self.coupling:
+                self.A_rel.copy_(-torch.eye(self.hidden_size))
+            else:
+                self.log_rate.zero_()
+            if self.input_init == "filter_bank":
+                self.B_rel.copy_(self._filter_bank_inputs())
+            self.b_rel.zero_()
+        self._bounds = bounds
+
+    @property
+    def time_constants(self) -> tuple[float, float]:
+        """``(τ_min, τ_max)`` the hidden field started from (leaky form: read from its rates, so a
+        range chosen among candidates survives saving and loading)."""
+        if self.form == "leaky":
+            rate = self.rate.detach().to(torch.float64)
+            return float(1.0 / rate.max()), float(1.0 / rate.min())
+        return self._bounds
 
     # -- the contract -------------------------------------------------------------
     def hidden_field(self, x, r, u=None):
@@ -225,7 +292,7 @@ class RecurrentClosure(Recurrent, LinearReadout):
         pre = torch.tanh(r @ self.W.T + z @ self.U.T + self.bias)
         if self.form == "tanh":
             return (pre - r) * torch.exp(-self.log_tau)
-        rate = torch.sigmoid(r @ self.W_z.T + z @ self.U_z.T + self.b_z) * (2.0 / self.time_constants[0])
+        rate = torch.sigmoid(r @ self.W_z.T + z @ self.U_z.T + self.b_z) * (2.0 / self._bounds[0])
         return rate * (pre - r)
 
     def correction(self, x, r=None, u=None):
@@ -331,6 +398,27 @@ class RecurrentClosure(Recurrent, LinearReadout):
         drive_a = za @ self.B.T + self.b
         return r @ E.T + drive_a @ P1.T + ((zb - za) @ self.B.T) @ P2.T
 
+    @property
+    def drives_exactly(self) -> bool:
+        """Whether an observation-driven warm-up is solved exactly (the leaky form's linear hidden field)."""
+        return self.form == "leaky"
+
+    def _diagonal_propagators(self, dt: float):
+        """Uncoupled leaky form: the diagonals ``(e, p1, p2)`` of :meth:`exact_propagators`, elementwise.
+
+        With ``z = a_i Δ`` (``a_i < 0`` the diagonal of ``A``): ``e = e^z``,
+        ``p1 = Δ·(e^z − 1)/z`` and ``p2 = Δ·(e^z − 1 − z)/z²``; for ``|z| < 0.1`` the
+        φ-functions are summed from their Taylor series (to ``z⁶``, error below
+        ``|z|⁷/9!`` relative), where the closed forms lose digits to cancellation.
+        """
+        z = -self.rate * torch.exp(self.log_rate) * dt
+        small = z.abs() < 0.1
+        zs = torch.where(small, torch.ones_like(z), z)  # keeps the closed forms finite where unused
+        em1 = torch.expm1(zs)
+        phi1 = torch.where(small, _taylor_phi(z, 1), em1 / zs)
+        phi2 = torch.where(small, _taylor_phi(z, 2), (em1 - zs) / (zs * zs))
+        return torch.exp(z), dt * phi1, dt * phi2
+
     def exact_warm_up(self, history: torch.Tensor, dt: float, r0: torch.Tensor | None = None,
                       forcing: torch.Tensor | None = None, return_all: bool = False) -> torch.Tensor:
         """Leaky form: the hidden state driven by observed ``history (T, *batch, dim)``, integrated exactly.
@@ -338,24 +426,72 @@ class RecurrentClosure(Recurrent, LinearReadout):
         Solves the same problem as :func:`mnemode.hybrid.warm_up` (``x_obs`` linear
         between samples, ``T − 1`` intervals of ``dt``) without a solver's
         truncation error: the input terms of every interval come from two batched
-        matrix products, and only the linear recurrence
-        ``r_{n+1} = E r_n + c_n`` is stepped. ``forcing`` are the forcing samples
+        matrix products, ``c_n = P1 (B z_n + b) + P2 B (z_{n+1} − z_n)``, and the
+        linear recurrence ``r_{n+1} = E r_n + c_n`` is then either stepped or — for
+        the uncoupled form, whose ``E = diag(e)`` — summed in closed form,
+        ``r_N = e^N ⊙ r_0 + Σ_n e^{N−1−n} ⊙ c_n`` (a handful of tensor operations
+        for the whole history, differentiable). ``forcing`` are the forcing samples
         ``(T, *batch, forcing_dim)`` on the same grid (``None``: unforced). Returns
         the final state, or all ``T`` states with ``return_all``.
         """
-        E, P1, P2 = self.exact_propagators(dt)
         z = self.normalised_inputs(history, forcing)
         bz = z @ self.B.T
-        c = (bz[:-1] + self.b) @ P1.T + (bz[1:] - bz[:-1]) @ P2.T
         r = self.initial_hidden(history.shape[1:-1], history.dtype) if r0 is None else r0
+        n = history.shape[0] - 1
+        if not self.coupling:
+            e, p1, p2 = self._diagonal_propagators(dt)
+            c = (bz[:-1] + self.b) * p1 + (bz[1:] - bz[:-1]) * p2
+            if not return_all:
+                if n == 0:
+                    return r
+                # e^{N−1−n} as exp((N−1−n)·log e): log e = a Δ exactly, no power of a rounded e
+                k = torch.arange(n - 1, -1, -1, dtype=e.dtype, device=e.device)
+                weights = torch.exp(k[:, None] * torch.log(e))  # (N, H)
+                flat = c.reshape(n, -1, self.hidden_size)
+                total = torch.einsum("nh,nbh->bh", weights, flat).reshape(c.shape[1:])
+                return r * torch.exp(n * torch.log(e)) + total
+            out = [r]
+            for i in range(n):
+                r = torch.addcmul(c[i], r, e)
+                out.append(r)
+            return torch.stack(out)
+        E, P1, P2 = self.exact_propagators(dt)
+        c = (bz[:-1] + self.b) @ P1.T + (bz[1:] - bz[:-1]) @ P2.T
         out = [r] if return_all else None
         Et = E.T
-        for n in range(c.shape[0]):
-            r = torch.addmm(c[n], r, Et) if r.dim() == 2 else r @ Et + c[n]
+        for i in range(n):
+            r = torch.addmm(c[i], r, Et) if r.dim() == 2 else r @ Et + c[i]
             if return_all:
                 out.append(r)
         return torch.stack(out) if return_all else r
 
+    # -- the unroll's affine form ----------------------------------------------------
+    def affine_rates(self):
+        """``(M, v)`` with ``[m, dr/dt] = [x, r] @ M + v``, or ``None`` when the closure is not affine.
+
+        The leaky form with a linear readout and no forcing inputs is affine in the
+        state ``s = [x, r]``: the input scaling, the per-state rates and the output
+        scaling fold into one ``(dim + H) × (dim + H)`` matrix and one offset, so a
+        solver stage evaluates the whole closure as one matrix product. Built from
+        the parameters (differentiable); valid until they change.
+        """
+        if self.form != "leaky" or self.readout != "linear" or self.forcing_dim:
+            return None
+        sc = self.scaling
+        if sc.applied:
+            mu, inv_sd, o_scale, o_off = sc.in_mean, 1.0 / sc.in_std, sc.out_scale, sc.out_offset
+        else:
+            mu, inv_sd = torch.zeros_like(sc.in_mean), torch.ones_like(sc.in_std)
+            o_scale, o_off = torch.ones_like(sc.out_scale), torch.zeros_like(sc.out_offset)
+        D = self.D * inv_sd                       # z = (x − μ)/s folded into the input weights
+        B = self.B_rel * inv_sd * self.rate[:, None]
+        own = torch.diag(-self.rate * torch.exp(self.log_rate)) if not self.coupling else self.A
+        from_x = torch.cat((D.T * o_scale, B.T), 1)
+        from_r = torch.cat((self.C.T * o_scale, own.T), 1)
+        M = torch.cat((from_x, from_r), 0)
+        v = torch.cat((o_off + o_scale * (self.c - D @ mu), self.rate * self.b_rel - B @ mu))
+        return M, v
+
     def extra_repr(self) -> str:
         return (f"dim={self.dim}, hidden_size={self.hidden_size}, form={self.form!r}, "
-                f"readout={self.readout!r}, time_constants={self.time_constants}")
+                f"readout={self.readout!r}, time_constants=({self.time_constants[0]:.4g}, {self.time_constants[1]:.4g}))")

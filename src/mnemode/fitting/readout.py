@@ -34,7 +34,8 @@ from typing import Sequence
 import numpy as np
 import torch
 
-from ..forecasting import model_dtype
+from ..forecasting import choose_starts, model_dtype, run_forecasts
+from ..validity import rms_scale, validity_times
 from ..data import FD_SCHEMES, TrajectorySet
 from ..closures.base import LinearReadout
 from .base import Fitter
@@ -90,8 +91,20 @@ def hidden_chunks(model: HybridField | HybridFlowMap, data: TrajectorySet, solve
     dt = data.dt
     u = _forcing_tensor(data, dtype)
     forcing = Forcing(float(data.times[0]), dt, u) if u is not None and isinstance(model, HybridField) else None
+    closure = model.closure
     with torch.no_grad():
-        r = model.closure.initial_hidden(states.shape[1:-1], dtype)
+        r = closure.initial_hidden(states.shape[1:-1], dtype)
+        if isinstance(model, HybridField) and getattr(closure, "drives_exactly", False):
+            # solved exactly, a chunk at a time; each chunk starts from the last state of the one before
+            for first in range(0, data.n_times, chunk):
+                last = min(data.n_times, first + chunk)
+                lo = max(first - 1, 0)
+                seg = closure.exact_warm_up(states[lo:last], dt, r0=r, return_all=True,
+                                            forcing=None if u is None else u[lo:last])
+                seg = seg[first - lo:]
+                r = seg[-1]
+                yield first, seg
+            return
         out, first = [r], 0
         for i in range(data.n_times - 1):
             r = warm_up(model, states[i:i + 2], dt, solver, r0=r, t0=float(data.times[i]), forcing=forcing)
@@ -188,19 +201,34 @@ class ReadoutRidgeFit(Fitter):
     :class:`~mnemode.closures.RecurrentClosure` with ``readout='linear'`` (its
     hidden field is then kept as initialised, e.g. a filter bank).
 
+    A closure that lists several time-constant ranges
+    (``time_constant_candidates``, e.g. ``RecurrentClosure(time_constants=[[0.1, 2],
+    [0.1, 10]])``) gets one ridge readout per range, and the range whose forecasts
+    on the validation data stay valid longest is kept: ``val_windows`` forecasts of
+    ``val_horizon`` time units after the run's warm-up, scored by their median
+    validity time at threshold ``gamma`` (ties by mean). A derivative-target fit
+    cannot make this choice itself: slow states that the warm-up cannot
+    reconstruct still lower the residual error while shortening the forecasts.
+
     Args:
         ridge: ridge penalty per sample, or a list of candidates of which the one
             with the smallest validation error is kept; ``None`` uses the closure's
             ``ridge`` attribute if it has one, else ``DEFAULT_ALPHAS``.
         scheme: finite-difference scheme for ``ẋ̂`` (see :data:`mnemode.data.FD_SCHEMES`).
+        val_windows, val_horizon, gamma: the forecasts that choose among time-constant
+            ranges (unused when the closure has one range).
 
     ``fit`` returns ``train_error`` and ``val_error`` as relative RMS errors of the
     residual targets (:func:`mnemode.fitting.regression.relative_error`: 0 is
-    perfect, 1 no better than the mean), ``ridge``, ``n_samples`` and ``fit_seconds``.
+    perfect, 1 no better than the mean), ``ridge``, ``n_samples`` and
+    ``fit_seconds``; with candidates also ``time_constants`` (the range kept) and
+    ``time_constant_scores`` (median validation validity of each range).
     """
 
-    def __init__(self, ridge: float | Sequence[float] | None = None, scheme: str = "central4"):
+    def __init__(self, ridge: float | Sequence[float] | None = None, scheme: str = "central4",
+                 val_windows: int = 64, val_horizon: float = 25.0, gamma: float = 0.5):
         self.ridge, self.scheme = ridge, scheme
+        self.val_windows, self.val_horizon, self.gamma = int(val_windows), float(val_horizon), float(gamma)
 
     def _alphas(self, closure) -> list[float]:
         a = self.ridge
@@ -223,10 +251,21 @@ class ReadoutRidgeFit(Fitter):
             raise ConfigError("fit", f"ReadoutRidgeFit needs a closure with a linear readout over fixed features; "
                               f"got {name}", "use a ReservoirClosure or a RecurrentClosure with readout='linear', "
                               "or fit with TrajectoryFit.")
-        dtype = model_dtype(model)
         targets = residual_targets(model, train, self.scheme)
         _, inputs, rho = targets
         set_scaling(closure, inputs.reshape(-1, inputs.shape[-1]), rho.reshape(-1, rho.shape[-1]))
+        candidates = list(getattr(closure, "time_constant_candidates", None) or [])
+        if len(candidates) < 2:
+            out = self._fit_readout(model, train, val, ctx, targets)
+        else:
+            out = self._choose_time_constants(model, candidates, train, val, ctx, targets)
+        out["fit_seconds"] = time.perf_counter() - t0
+        return out
+
+    def _fit_readout(self, model, train, val, ctx, targets) -> dict:
+        """Ridge readouts for each penalty; the best on validation data is set. Returns the errors."""
+        closure = model.closure
+        dtype = model_dtype(model)
         discard = int(round(ctx.warm_up / train.dt)) if model.hidden_size else 0
         fit_eq = _normal_equations(model, train, ctx.solver, self.scheme, discard, dtype, targets)
         val_eq = None if val is None else _normal_equations(model, val, ctx.solver, self.scheme, discard, dtype)
@@ -246,5 +285,33 @@ class ReadoutRidgeFit(Fitter):
                               "check the data for outliers or raise the ridge penalty (ridge).")
         _, alpha, w, train_err, val_err = best
         closure.set_readout(w)
-        return {"train_error": train_err, "val_error": val_err, "ridge": alpha,
-                "n_samples": int(fit_eq.n), "fit_seconds": time.perf_counter() - t0}
+        return {"train_error": train_err, "val_error": val_err, "ridge": alpha, "n_samples": int(fit_eq.n)}
+
+    def _choose_time_constants(self, model, candidates, train, val, ctx, targets) -> dict:
+        """A readout per time-constant range; the range whose validation forecasts last longest is kept."""
+        closure = model.closure
+        data = val if val is not None else train
+        dt = data.dt
+        n_warm = int(round(ctx.warm_up / dt)) if model.hidden_size else 0
+        n_after = max(1, int(round(self.val_horizon / dt)))
+        starts = choose_starts(data.n_times, data.n_trajectories, n_warm, n_after, self.val_windows,
+                               what="validation data", fix="shorten val_horizon or warm_up, or use longer "
+                               "validation trajectories.")
+        truth = np.stack([data.states[s: s + n_after + 1, b] for b, s in zip(starts.trajectory, starts.index)], 1)
+        scale, times = rms_scale(data.states), data.absolute_times()
+        best, scores = None, {}
+        for bounds in candidates:
+            closure.set_time_constants(bounds)
+            out = self._fit_readout(model, train, val, ctx, targets)
+            fc = run_forecasts(model, ctx.solver, data.states, starts, n_warm, n_after, dt, data.forcing,
+                               times=times)
+            valid, _ = validity_times(np.where(np.isfinite(fc.states), fc.states, np.inf), truth, dt, self.gamma,
+                                      scale)
+            score = (float(np.median(valid)), float(np.mean(valid)))
+            scores[f"{bounds[0]:g}-{bounds[1]:g}"] = score[0]
+            if best is None or score > best[0]:
+                best = (score, bounds, out, {k: v.detach().clone() for k, v in closure.state_dict().items()})
+        _, bounds, out, state = best
+        closure.load_state_dict(state)  # the rates carry the range kept
+        out.update(time_constants=list(bounds), time_constant_scores=scores)
+        return out

@@ -431,6 +431,8 @@ class TrajectoryFit(Fitter):
             self._validate_and_keep(model, prob, progress, ctx)
         model.load_state_dict(progress.best.model)
         diagnostics = self._diagnostics(progress, stop_reason, ctx, t_enter)
+        if len(getattr(model.closure, "time_constant_candidates", ())) > 1:
+            diagnostics["time_constants"] = list(model.closure.time_constants)  # the range the ridge start kept
         if prob.rank == 0:
             self._checkpoint(model, optimiser, gen, progress, settings, ctx, finished=True, diagnostics=diagnostics)
         return diagnostics
@@ -716,7 +718,12 @@ class TrajectoryFit(Fitter):
     def _initialise(self, model, train, val, ctx):
         closure = model.closure
         if self._uses_ridge(closure):
-            ReadoutRidgeFit(ridge=self.ridge, scheme=self.scheme).fit(model, train, val, ctx)
+            out = ReadoutRidgeFit(ridge=self.ridge, scheme=self.scheme, val_windows=self.val_windows,
+                                  val_horizon=self._to_intervals(self.val_horizon, train.dt, ctx) * train.dt,
+                                  gamma=self.gamma).fit(model, train, val, ctx)
+            if "time_constants" in out:
+                log.info("%s: time constants %s kept of the ranges tried (median validation validity %s)",
+                         ctx.name, out["time_constants"], out["time_constant_scores"])
         else:
             _, inputs, rho = residual_targets(model, train, self.scheme)
             set_scaling(closure, inputs.reshape(-1, inputs.shape[-1]), rho.reshape(-1, rho.shape[-1]))
