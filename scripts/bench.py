@@ -5,7 +5,9 @@ Sections (``--only`` picks some; all by default):
 ``fit``       Fitting throughput, forward + backward: (a) a forecast unroll of
               ``F`` RK4 steps; (b) a whole fitting step (warm-up on observations,
               the last part differentiated, then the forecast). mnemode's RK4
-              (eager, and compiled with ``compile=True`` unless ``--no-compile``)
+              (eager: the prepared field ``simulate`` unrolls, and for reference
+              the plain field; compiled with ``compile=True`` unless
+              ``--no-compile``; mnemode's warm-up is exact for the leaky closure)
               against torchdiffeq's ``odeint(method='rk4')`` with the same explicit
               step and against a plain eager Python loop of the textbook RK4. On the
               demo model (thermosyphon physics + leaky memory closure, hidden 18,
@@ -16,8 +18,9 @@ Sections (``--only`` picks some; all by default):
 ``export``    The exported simulator (``export_simulator`` → ``load_simulator``,
               ``Simulator.rollout``) against the eager model (``simulate``) for
               ``N`` observation steps at batch 1 and 64, and, where a C++ compiler
-              is present, the ahead-of-time package of the same program
-              (:func:`mnemode.export_aot.compile_program`) with its parity.
+              is present, the ahead-of-time compiled simulator
+              (``export_simulator(compiled=True)`` → ``load_simulator(compiled=True)``,
+              whose rollout calls the compiled block program) with its parity.
 ``truth``     Cost of a forecast: the corrected simulator at its Δt against the
               truth at its accuracy-matched RK4 step over the same horizon, both
               run the same way (both eager; both compiled with ``compile=True``
@@ -219,7 +222,9 @@ def _fit_workloads(model, history, n_warm, n_grad, n_f, dt, compile_too: bool):
         torch.autograd.grad(loss, params)
 
     unroll = {
-        "mnemode RK4 (eager)": lambda: backward(RK4(dt).unroll(model, s0, 0.0, dt, n_f)),
+        # simulate() unrolls the prepared field (HybridField.prepared: the closure folded once per unroll)
+        "mnemode RK4 (eager)": lambda: backward(RK4(dt).unroll(model.prepared(), s0, 0.0, dt, n_f)),
+        "mnemode RK4 (eager, plain field)": lambda: backward(RK4(dt).unroll(model, s0, 0.0, dt, n_f)),
         "torchdiffeq rk4 (same step)": lambda: backward(_torchdiffeq_unroll(model, s0, dt, n_f)),
         "plain eager loop (textbook RK4)": lambda: backward(_textbook_rk4_unroll(model, s0, dt, n_f)),
     }
@@ -228,6 +233,7 @@ def _fit_workloads(model, history, n_warm, n_grad, n_f, dt, compile_too: bool):
         unroll["mnemode RK4 (compile=True)"] = lambda: backward(compiled.unroll(model, s0, 0.0, dt, n_f))
 
     def fit_step(solver):
+        # mnemode's warm-up: exact for the leaky closure (closed form when uncoupled), else the solver
         n_free = n_warm - n_grad
         with torch.no_grad():
             r = warm_up(model, history[: n_free + 1], dt, solver)
@@ -254,23 +260,10 @@ def _fit_workloads(model, history, n_warm, n_grad, n_f, dt, compile_too: bool):
         s = torch.cat((x0, r), -1)
         backward(_torchdiffeq_unroll(model, s, dt, n_f))
 
-    def fit_step_exact(solver):
-        # warm-up by the leaky hidden field's exact stepping (closure.exact_warm_up), forecast by the solver
-        n_free = n_warm - n_grad
-        closure = model.closure
-        with torch.no_grad():
-            r = closure.exact_warm_up(history[: n_free + 1], dt)
-        r = closure.exact_warm_up(history[n_free: n_warm + 1], dt, r0=r)
-        backward(torch.cat((x0[None], simulate(model, x0, n_f, dt, solver, r0=r, t0=n_warm * dt)[1:])))
-
     step = {"mnemode RK4 (eager)": lambda: fit_step(RK4(dt)),
             "torchdiffeq rk4 (same step)": fit_step_torchdiffeq}
     if compile_too:
         step["mnemode RK4 (compile=True)"] = lambda: fit_step(compiled)
-    if getattr(model.closure, "form", None) == "leaky":
-        step["exact warm-up + RK4 (eager)"] = lambda: fit_step_exact(RK4(dt))
-        if compile_too:
-            step["exact warm-up + RK4 (compile=True)"] = lambda: fit_step_exact(compiled)
     return unroll, step, compiled
 
 
@@ -323,7 +316,7 @@ def bench_fit(args, out: dict) -> None:
 
 def bench_export(args, out: dict) -> None:
     from mnemode.export import export_simulator
-    from mnemode.export_aot import compile_program, cxx_compiler, load_compiled
+    from mnemode.export_aot import cxx_compiler
     from mnemode.hybrid import simulate
     from mnemode.simulator import load_simulator
     from mnemode.solvers import RK4
@@ -342,17 +335,22 @@ def bench_export(args, out: dict) -> None:
         res["export_seconds"] = export_s
         print(f"\nexport: export_simulator took {export_s:.1f} s")
         sim = load_simulator(d, on_envelope="ignore")
-        runner, aot = None, None
+        fast = None
         if not args.quick and args.compile:
             if cxx_compiler() is None:
-                print("  no C++ compiler: no ahead-of-time package")
+                print("  no C++ compiler: no ahead-of-time packages")
             else:
-                s_ex = torch.cat((hist[-1], model.closure.initial_hidden((64,), torch.float64)), -1)
-                aot = compile_program(d / "simulator.pt2", Path(tmp) / "simulator_aoti.pt2", (s_ex,))
-                res["aot"] = {k: v for k, v in aot.items() if k != "path"}
-                print(f"  ahead-of-time package: kind {aot['kind']}, {aot['seconds']:.1f} s, parity {aot['parity']}"
-                      + (f" ({aot['reason']})" if aot["reason"] else ""))
-                runner = load_compiled(aot["path"], aot["kind"])
+                d2 = Path(tmp) / "export_compiled"
+                manifest, compiled_s = timed(lambda: export_simulator(
+                    model, d2, dt=dt, solver=RK4(dt), state_names=system.state_names,
+                    state_units=system.state_units, warm_up_steps=10, envelope=env, parity_steps=50,
+                    check_float32=False, compiled=True))
+                rec = manifest["compiled"]
+                res["compiled_export_seconds"], res["compiled"] = compiled_s, rec
+                print(f"  export with compiled=True: {compiled_s:.1f} s; "
+                      + ", ".join(f"{role}: {r['kind']} (parity {r['parity']})" for role, r in rec.items()))
+                if rec.get("step", {}).get("kind") == "aoti":
+                    fast = load_simulator(d2, on_envelope="ignore", compiled=True)
         for batch in (1, 64):
             x0 = hist[-1, :batch].contiguous()
             r0 = model.closure.initial_hidden((batch,), torch.float64)
@@ -363,20 +361,16 @@ def bench_export(args, out: dict) -> None:
 
             fns = {"eager model (simulate)": eager,
                    "exported .pt2 (Simulator.rollout)": lambda: sim.rollout(x0, n, r0=r0)}
-            if runner is not None:
-                s0 = torch.cat((x0, r0), -1)
-
-                def aot_loop():
-                    s = s0
-                    with torch.no_grad():
-                        for _ in range(n):
-                            s = runner(s)
-                    return s
-                fns[f"AOT package ({aot['kind']}) loop"] = aot_loop
+            if fast is not None:
+                fns["compiled simulator (rollout, compiled=True)"] = lambda: fast.rollout(x0, n, r0=r0)
             t = race(fns, args.repeats)
             rows = {k: row(k, v, t["eager model (simulate)"]) for k, v in t.items()}
             print_table(f"export: {n} observation steps at batch {batch}", rows, "eager")
             res[f"batch_{batch}"] = rows
+            if fast is not None:
+                diff = float((fast.rollout(x0, n, r0=r0) - eager()).abs().max())
+                res[f"batch_{batch}"]["compiled_vs_eager_max_abs_diff"] = diff
+                print(f"  compiled simulator vs eager model after {n} steps: largest difference {diff:.3g}")
     out["export"] = res
 
 

@@ -2,7 +2,7 @@
 
 Usage::
 
-    python scripts/kill_resume_trials.py [--kills 10] [--seed 0] [--steps 80] [--workdir DIR]
+    python scripts/kill_resume_trials.py [--kills 10] [--seed 0] [--steps 300] [--workdir DIR]
 
 One run directory is fitted by a chain of processes: the first is ``mnemode fit``,
 each later one ``mnemode resume RUN_DIR``; each is killed with SIGKILL at a random
@@ -136,7 +136,7 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--kills", type=int, default=10, help="SIGKILLs before the last resume (default 10)")
     parser.add_argument("--seed", type=int, default=0, help="seed of the kill schedule")
-    parser.add_argument("--steps", type=int, default=80, help="optimiser steps of the fit")
+    parser.add_argument("--steps", type=int, default=300, help="optimiser steps of the fit")
     parser.add_argument("--workdir", default=None, help="keep everything here (default: a temporary folder)")
     args = parser.parse_args(argv)
     rng = random.Random(args.seed)

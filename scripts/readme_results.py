@@ -66,8 +66,11 @@ def results_section(metrics: dict, status: dict, figure: str = FIGURE, main: str
     minutes = _minutes(status)
     took = ""
     if minutes is not None:
-        n = max(1, round(minutes))
-        took = f"about {n} minute{'s' if n != 1 else ''} in all; "
+        if minutes < 3:  # short runs in seconds, to the nearest ten
+            took = f"about {max(10, round(minutes * 6) * 10)} seconds in all; "
+        else:
+            n = round(minutes)
+            took = f"about {n} minutes in all; "
     lines = [
         f"What it printed ({took}warm-up {_num(a.get('warm_up'), 'g')} time units, {a.get('n_starts')} forecast "
         f"starts on {test.get('n_trajectories')} independent test trajectories; regenerated from the run by "

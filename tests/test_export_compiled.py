@@ -34,13 +34,17 @@ def test_compiled_programs_agree_with_the_exported_ones(tmp_path):
                                 state_names=system.state_names, state_units=system.state_units, warm_up_steps=5,
                                 envelope=envelope, parity_steps=50, check_float32=False, compiled=True)
     rec = manifest["compiled"]
-    assert set(rec) == {"step", "warm_up"}
+    # an autonomous model also gets a block program: several intervals per call of native code
+    assert set(rec) == {"step", "warm_up", "block"}
     assert rec["step"]["kind"] == "aoti" and rec["step"]["parity"] <= 1e-6, rec
-    assert "simulator_compiled.pt2" in manifest["files"]
+    assert rec["block"]["kind"] == "aoti" and rec["block"]["parity"] <= 1e-6 and rec["block"]["steps"] > 1, rec
+    assert {"simulator_compiled.pt2", "block_compiled.pt2"} <= set(manifest["files"])
 
     plain = load_simulator(tmp_path / "sim")
     fast = load_simulator(tmp_path / "sim", compiled=True)
+    assert fast._block is not None
     history = np.stack([np.linspace([1.0, 2.0, 45.0], [1.5, 2.5, 46.0], 6)] * 2, axis=1)  # (6, 2, 3)
+    # 100 intervals: whole blocks, then single steps for the rest
     a = plain.rollout(None, 100, history=history)
     b = fast.rollout(None, 100, history=history)
     assert torch.as_tensor(np.asarray(a)).shape == torch.as_tensor(np.asarray(b)).shape

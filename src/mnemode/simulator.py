@@ -175,9 +175,10 @@ def _load_program(directory: Path, name: str, manifest: dict, verify: bool):
 
 
 def _load_compiled(directory: Path, manifest: dict, verify: bool, with_warm_up: bool):
-    """The ahead-of-time compiled step (and warm-up) programs, hash-checked, or a clear error."""
+    """The ahead-of-time compiled step, warm-up (or ``None``) and block (or ``None``) programs, hash-checked."""
     rec = manifest.get("compiled") or {}
     files = [rec.get(role, {}).get("file") for role in ("step", "warm_up")[: 2 if with_warm_up else 1]]
+    block_file = (rec.get("block") or {}).get("file")
     if not all(files):
         why = "; ".join(f"{r}: {v.get('reason')}" for r, v in rec.items() if v.get("reason")) or "not requested"
         raise CheckpointError(str(directory / MANIFEST_FILE), f"lists no compiled programs ({why})",
@@ -186,7 +187,7 @@ def _load_compiled(directory: Path, manifest: dict, verify: bool, with_warm_up: 
     from torch._inductor import aoti_load_package
 
     out = []
-    for name in files:
+    for name in files + ([block_file] if block_file else []):
         path = directory / name
         entry = manifest.get("files", {}).get(name, {})
         data = path.read_bytes() if path.is_file() else b""
@@ -194,7 +195,7 @@ def _load_compiled(directory: Path, manifest: dict, verify: bool, with_warm_up: 
             raise CheckpointError(str(path), "is missing or does not match the SHA-256 in the manifest",
                                   "copy the export directory again or re-export the run.")
         out.append(aoti_load_package(str(path)))
-    return out[0], (out[1] if with_warm_up else None)
+    return out[0], (out[1] if with_warm_up else None), (out[-1] if block_file else None)
 
 
 def read_key(key_file=None) -> bytes | None:
@@ -256,14 +257,15 @@ def load_simulator(path, envelope_margin: float | None = None, on_envelope: str 
     except (KeyError, TypeError):
         raise CheckpointError(str(directory / MANIFEST_FILE), "is incomplete (no program entries)",
                               "re-export the run or copy the export directory again.") from None
+    block = None
     if compiled:
-        step, wu = _load_compiled(directory, manifest, verify, wu_file is not None)
+        step, wu, block = _load_compiled(directory, manifest, verify, wu_file is not None)
     else:
         step = _load_program(directory, step_file, manifest, verify)
         wu = _load_program(directory, wu_file, manifest, verify) if wu_file else None
     try:
         return Simulator(manifest, step, wu, directory=directory, envelope_margin=envelope_margin,
-                         on_envelope=on_envelope)
+                         on_envelope=on_envelope, block_program=block)
     except (KeyError, TypeError, ValueError) as exc:
         raise CheckpointError(str(directory / MANIFEST_FILE), f"is incomplete or malformed ({type(exc).__name__}: "
                               f"{exc})", "re-export the run or copy the export directory again.") from None
@@ -317,11 +319,14 @@ class Simulator:
     """
 
     def __init__(self, manifest: dict, step_program, warm_up_program=None, *, directory: Path | None = None,
-                 envelope_margin: float | None = None, on_envelope: str = "warn"):
+                 envelope_margin: float | None = None, on_envelope: str = "warn", block_program=None):
         self.manifest = manifest
         self.directory = directory
         self._step = step_program
         self._warm = warm_up_program
+        # a compiled block program (several intervals per call) and its length, when loaded
+        self._block = block_program
+        self._block_steps = int((manifest.get("compiled") or {}).get("block", {}).get("steps", 0) or 0)
         st = manifest["state"]
         self.state_names: tuple[str, ...] = tuple(st["names"])
         self.state_units: tuple[str, ...] = tuple(st.get("units", ()))
@@ -396,7 +401,8 @@ class Simulator:
         """A simulator sharing these programs with other guard settings (no reload)."""
         return Simulator(self.manifest, self._step, self._warm, directory=self.directory,
                          envelope_margin=self._margin if envelope_margin is None else envelope_margin,
-                         on_envelope=self._on_envelope if on_envelope is None else on_envelope)
+                         on_envelope=self._on_envelope if on_envelope is None else on_envelope,
+                         block_program=self._block)
 
     def bounds(self) -> tuple[torch.Tensor, torch.Tensor]:
         """Lower and upper limits ``(D,)`` of the guarded region (envelope widened by the margin)."""
@@ -687,21 +693,53 @@ class Simulator:
 
     def _run(self, s0: torch.Tensor, n_steps: int, watch: "_Watch", u: torch.Tensor | None = None,
              t0: float = 0.0, progress=None) -> torch.Tensor:
+        """``n_steps`` intervals from ``s0``; the checks of each step run once per chunk of steps.
+
+        Steps are taken a chunk at a time (the compiled block program's length when
+        there is one, else :data:`_CHECK_EVERY` single steps), then the chunk's states
+        are checked together: the first step that is non-finite or outside the
+        envelope is found and reported exactly as a step-by-step check would report
+        it (same step, same message, same order); only the states computed after a
+        blow-up within its chunk are wasted work.
+        """
         out = torch.empty((n_steps + 1, *s0.shape), dtype=self.dtype)
         out[0] = s0
-        s = s0
+        s, k = s0, 0
+        block = self._block if (self._block is not None and self.step_kind == "autonomous") else None
         with torch.no_grad():
-            for k in range(1, n_steps + 1):
-                s = self._call_step(s, t0 + (k - 1) * self.dt, u, k - 1)
-                self._finite(s, "rollout", k, t0)
-                out[k] = s
-                if watch.active:
-                    watch(s[..., : self.dim], "rollout", k, t0=t0)
-                    if self.hidden_size and watch.active:
-                        watch(s[..., self.dim:], "rollout", k, part="hidden", t0=t0)
+            while k < n_steps:
+                if block is not None and n_steps - k >= self._block_steps:
+                    n = self._block_steps
+                    out[k + 1: k + 1 + n] = block(s)
+                else:
+                    n = min(_CHECK_EVERY, n_steps - k)
+                    for j in range(n):
+                        s = self._call_step(s, t0 + (k + j) * self.dt, u, k + j)
+                        out[k + 1 + j] = s
+                self._check_chunk(out[k + 1: k + 1 + n], k + 1, watch, t0)
+                s = out[k + n]
+                k += n
                 if progress is not None:
-                    progress(1)
+                    progress(n)
         return out
+
+    def _check_chunk(self, chunk: torch.Tensor, first: int, watch: "_Watch", t0: float) -> None:
+        """Finiteness and envelope checks of consecutive states ``(n, B, width)``, the first at step ``first``."""
+        flags = ~torch.isfinite(chunk).flatten(1).all(1)
+        parts = []
+        if watch.active:
+            parts = [(sl, part, lo, hi) for sl, part, lo, hi in (
+                (slice(None, self.dim), "state", self._lo, self._hi),
+                (slice(self.dim, None), "hidden", self._rlo, self._rhi)) if lo is not None
+                and (part == "state" or self.hidden_size)]
+            for sl, _, lo, hi in parts:
+                x = chunk[..., sl]
+                flags = flags | ((x < lo) | (x > hi)).flatten(1).any(1)
+        for j in flags.nonzero().flatten().tolist():  # the flagged steps only, in order
+            self._finite(chunk[j], "rollout", first + j, t0)
+            for sl, part, _, _ in parts:
+                if watch.active:
+                    watch(chunk[j][..., sl], "rollout", first + j, part=part, t0=t0)
 
     def rollout(self, x0, n_steps: int, history=None, r0=None, return_hidden: bool = False, forcing=None,
                 t0: float = 0.0, cold_start: bool = False):
@@ -740,6 +778,10 @@ class Simulator:
         traj = self._run(s0, int(n_steps), watch, u, float(t0))
         x, r = self.split(traj)
         return (x, r) if return_hidden else x
+
+
+#: single steps taken between checks of a rollout (:meth:`Simulator._run`)
+_CHECK_EVERY = 64
 
 
 class _Watch:

@@ -48,15 +48,19 @@ from . import parity as _parity
 from .checks import TOLERANCE, ExportRequest, check_request
 from .manifest import build_manifest
 from .onnx import onnx_bytes, onnx_check, require_onnx
-from .programs import Program, StepProgram, WarmUpInterval, capture, program_bytes, reload
+from .programs import BlockProgram, Program, StepProgram, WarmUpInterval, capture, program_bytes, reload
 
 __all__ = ["export_simulator", "ParityError", "STEP_ONNX_FILE", "WARM_UP_ONNX_FILE"]
 
 STEP_ONNX_FILE = "simulator.onnx"
 STEP_COMPILED_FILE = "simulator_compiled.pt2"
 WARM_UP_COMPILED_FILE = "warm_up_compiled.pt2"
+BLOCK_COMPILED_FILE = "block_compiled.pt2"
+#: observation intervals one call of the compiled block program advances (autonomous models)
+BLOCK_STEPS = 32
 WARM_UP_ONNX_FILE = "warm_up.onnx"
 _ALL_FILES = (STEP_FILE, WARM_UP_FILE, STEP_ONNX_FILE, WARM_UP_ONNX_FILE, STEP_COMPILED_FILE, WARM_UP_COMPILED_FILE,
+              BLOCK_COMPILED_FILE,
               MANIFEST_FILE, SIGNATURE_FILE)
 
 
@@ -248,6 +252,11 @@ def compiled_programs(cap: Captured) -> dict:
     exported program (≤ 1e-6), nothing is appended and the record says why: the plain
     ``.pt2`` programs stay the ones to load. A compiled package holds native code, so
     :func:`~mnemode.simulator.load_simulator` loads it only when asked (``compiled=True``).
+
+    An autonomous model also gets a compiled *block* program, :data:`BLOCK_STEPS`
+    intervals per call (``state ↦ states (K, batch, width)``): calling native code
+    costs tens of microseconds, more than a small model's step, so a rollout pays it
+    once per block instead of once per step.
     """
     import tempfile
 
@@ -255,17 +264,29 @@ def compiled_programs(cap: Captured) -> dict:
 
     examples = {"step": cap.step_examples, "warm_up": cap.warm_examples}
     files = {"step": STEP_COMPILED_FILE, "warm_up": WARM_UP_COMPILED_FILE}
+    todo = [(p.role, torch.export.load(io.BytesIO(p.data)), p) for p in cap.programs if p.role in files]
+    step = next((p for p in cap.programs if p.role == "step"), None)
+    if step is not None and len(cap.step_examples) == 1:  # autonomous: (state) only
+        block = BlockProgram(cap.step_module, BLOCK_STEPS)
+        ep = capture(block, cap.step_examples, f"model (block of {BLOCK_STEPS} intervals)")
+        width = step.inputs["state"][1]
+        todo.append(("block", ep, Program("block", BLOCK_COMPILED_FILE, "aoti", b"", step.inputs,
+                                          {"next_states": [BLOCK_STEPS, "batch", width]},
+                                          f"state [x, r] at t -> the states at t + dt, ..., t + {BLOCK_STEPS} dt",
+                                          {"steps": BLOCK_STEPS})))
+        examples["block"], files["block"] = cap.step_examples, BLOCK_COMPILED_FILE
     rec = {}
-    for p in [q for q in cap.programs if q.role in files]:
+    for role, program, p in todo:
         with tempfile.TemporaryDirectory() as tmp:
-            out = compile_program(torch.export.load(io.BytesIO(p.data)), Path(tmp) / files[p.role],
-                                  examples[p.role])
+            out = compile_program(program, Path(tmp) / files[role], examples[role])
             data = Path(out["path"]).read_bytes()
-        rec[p.role] = {k: out[k] for k in ("kind", "seconds", "parity", "reason")}
+        rec[role] = {k: out[k] for k in ("kind", "seconds", "parity", "reason")}
         if out["kind"] == AOTI:
-            cap.programs.append(Program(f"{p.role}_compiled", files[p.role], "aoti", data, p.inputs, p.outputs,
-                                        p.maps))
-            rec[p.role]["file"] = files[p.role]
+            cap.programs.append(Program(f"{role}_compiled", files[role], "aoti", data, p.inputs, p.outputs,
+                                        p.maps, dict(p.extra)))
+            rec[role]["file"] = files[role]
+            if role == "block":
+                rec[role]["steps"] = BLOCK_STEPS
     return rec
 
 

@@ -36,7 +36,7 @@ from ..errors import ConfigError
 from ..hybrid import Driven, HybridField, HybridFlowMap, reads_time, warm_up
 from ..solvers import Solver
 
-__all__ = ["PROGRAM_KINDS", "program_kind", "IntervalForcing", "StepProgram", "WarmUpInterval", "Program", "capture",
+__all__ = ["PROGRAM_KINDS", "program_kind", "IntervalForcing", "StepProgram", "BlockProgram", "WarmUpInterval", "Program", "capture",
            "program_bytes", "reload"]
 
 
@@ -73,21 +73,31 @@ class _AutonomousStep(nn.Module):
     def __init__(self, model: nn.Module, solver: Solver | None, dt: float):
         super().__init__()
         self.model, self.solver, self.dt = model, solver, float(dt)
+        # the frozen model's folded form (HybridField.prepared), built once: the program then captures
+        # one matrix product per stage where the closure allows it, with the folded weights as constants.
+        # Kept only when it differs from the model (a plain attribute, never a second name for a submodule).
+        prepared = model.prepared() if isinstance(model, HybridField) else model
+        self._prepared = None if prepared is model else prepared
+
+    @property
+    def field(self):
+        """What the solver steps: the prepared field, else the model itself."""
+        return self.model if self._prepared is None else self._prepared
 
     def forward(self, state: torch.Tensor) -> torch.Tensor:
         if isinstance(self.model, HybridFlowMap):
             return self.model(state)
-        return self.solver.advance(self.model, 0.0, state, self.dt)
+        return self.solver.advance(self.field, 0.0, state, self.dt)
 
 
 class _TimedStep(_AutonomousStep):
     def forward(self, t: torch.Tensor, state: torch.Tensor) -> torch.Tensor:
-        return self.solver.advance(self.model, t, state, self.dt)
+        return self.solver.advance(self.field, t, state, self.dt)
 
 
 class _ForcedStep(_AutonomousStep):
     def forward(self, t: torch.Tensor, state: torch.Tensor, u_a: torch.Tensor, u_b: torch.Tensor) -> torch.Tensor:
-        driven = Driven(self.model, IntervalForcing(t, self.dt, u_a, u_b))
+        driven = Driven(self.field, IntervalForcing(t, self.dt, u_a, u_b))
         return self.solver.advance(driven, t, state, self.dt)
 
 
@@ -116,6 +126,21 @@ def StepProgram(model: nn.Module, solver: Solver | None, dt: float, kind: str = 
         raise ConfigError("program kind", f"is {kind!r}; expected one of {PROGRAM_KINDS}",
                           "pass the kind program_kind() returns.")
     return _STEPS[kind](model, solver, dt)
+
+
+class BlockProgram(nn.Module):
+    """``steps`` consecutive intervals of an autonomous step program: ``state ↦ states (steps, batch, width)``."""
+
+    def __init__(self, step: nn.Module, steps: int):
+        super().__init__()
+        self.step, self.steps = step, int(steps)
+
+    def forward(self, state: torch.Tensor) -> torch.Tensor:
+        out = []
+        for _ in range(self.steps):
+            state = self.step(state)
+            out.append(state)
+        return torch.stack(out)
 
 
 def WarmUpInterval(model: nn.Module, solver: Solver | None, dt: float, forced: bool = False) -> nn.Module:
