@@ -126,3 +126,13 @@ def test_truncated_exact_warm_up_differentiates_only_the_last_intervals():
     assert float(grad[:80].abs().max()) == 0.0 and float(grad[81:].abs().max()) > 0.0
     # and the value is the untruncated one
     torch.testing.assert_close(r, warm_up(model, history.detach(), 0.02, RK4(0.02)), rtol=0, atol=1e-13)
+
+
+def test_exact_warm_up_is_refused_where_there_is_none():
+    from mnemode.errors import ConfigError
+
+    model = HybridField(None, RecurrentClosure(3, hidden_size=4, form="tanh", dtype="float64"), 3)
+    history = torch.zeros(5, 2, 3, dtype=torch.float64)
+    with pytest.raises(ConfigError, match="exact"):
+        warm_up(model, history, 0.02, RK4(0.02), exact=True)
+    assert warm_up(model, history, 0.02, RK4(0.02)).shape == (2, 4)  # the solver steps it

@@ -35,10 +35,11 @@ import torch
 from torch import nn
 
 from .closures.base import Closure, DiscreteRecurrent, Recurrent
+from .errors import ConfigError
 from .solvers import FlowMap, Solver
 
-__all__ = ["HybridField", "AffineHybridField", "PreparedMemorylessField", "HybridFlowMap", "Forcing", "Driven", "drive", "physics_time", "reads_time", "simulate",
-           "warm_up"]
+__all__ = ["HybridField", "AffineHybridField", "PreparedMemorylessField", "HybridFlowMap", "Forcing", "Driven",
+           "drive", "physics_time", "reads_time", "simulate", "warm_up"]
 
 
 def reads_time(physics) -> bool:
@@ -130,11 +131,11 @@ class HybridField(nn.Module):
         """
         if self.closure is None:
             return self
-        affine = getattr(self.closure, "affine_rates", lambda: None)()
+        affine = self.closure.affine_rates()
         if affine is not None:
             return AffineHybridField(self.physics, *affine, self.dim)
         if self.hidden_size == 0:
-            correction = getattr(self.closure, "prepared_correction", lambda: None)()
+            correction = self.closure.prepared_correction()
             if correction is not None:
                 return PreparedMemorylessField(self.physics, correction, self.dim)
         return self
@@ -374,9 +375,12 @@ def warm_up(model: HybridField | HybridFlowMap, history: torch.Tensor, dt: float
     r = closure.initial_hidden(history.shape[1:-1], history.dtype) if r0 is None else r0
     n = history.shape[0] - 1
     first_grad = 0 if grad_steps is None else max(0, n - grad_steps)
-    if exact is None:
-        exact = isinstance(model, HybridField) and getattr(closure, "drives_exactly", False)
-    if exact:
+    can = isinstance(model, HybridField) and getattr(closure, "drives_exactly", False)
+    if exact and not can:
+        raise ConfigError("warm_up(exact=True)", f"{type(closure).__name__} in a {type(model).__name__} has no exact "
+                          "solution of its observation-driven hidden field",
+                          "leave exact=None (exact where available) or step with the solver (exact=False).")
+    if can if exact is None else exact:
         return _exact_warm_up(closure, history, dt, r, t0, first_grad, forcing)
 
     def advance(i, r):

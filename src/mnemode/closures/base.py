@@ -157,6 +157,24 @@ class Closure(nn.Module, metaclass=ABCMeta):
                    u: torch.Tensor | None = None) -> torch.Tensor:
         """The correction ``m(x[, r][, u])``, ``(..., dim)``."""
 
+    def affine_rates(self):
+        """``(M, v)`` with ``[m, dr/dt] = [x, r] @ M + v`` when the closure is affine in the state, else ``None``.
+
+        A closure that returns them is evaluated by one matrix product per solver
+        stage (:meth:`mnemode.hybrid.HybridField.prepared`); they must be built from
+        the parameters (so gradients reach them) and equal the plain closure's
+        values to rounding.
+        """
+        return None
+
+    def prepared_correction(self):
+        """A memoryless closure's correction ``x ↦ m(x)`` with its constants folded once, or ``None``.
+
+        Same contract as :meth:`affine_rates`: built from the parameters, valid until
+        they change, equal to :meth:`correction` to rounding.
+        """
+        return None
+
     def initial_hidden(self, batch_shape, dtype=torch.float32) -> torch.Tensor:
         """Hidden state before warm-up: zeros unless a subclass learns one."""
         ref = next(iter(self.buffers()), None)
