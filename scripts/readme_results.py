@@ -49,7 +49,11 @@ def _describe(name: str, fit: dict, a: dict) -> str:
         return f"oracle (truth equations from a {_num(a.get('oracle_noise'), 'g')} perturbation of the full state)"
     d = fit.get(name, {})
     how = " by ".join(str(x) for x in (d.get("closure"), d.get("fitter")) if x)
-    extra = f", {d['steps']} steps" if d.get("fitter") == "TrajectoryFit" and d.get("steps") else ""
+    extra = ""
+    if d.get("fitter") == "TrajectoryFit" and d.get("steps"):
+        extra = f", {d['steps']} steps"
+        if d.get("best_step") == 0:  # the fine-tuning never beat its start on validation: say which model this is
+            extra += "; its ridge start kept" if d.get("note", "").find("ridge") >= 0 else "; its start kept"
     return f"{name} ({how}{extra})" if how else name
 
 

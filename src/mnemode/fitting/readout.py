@@ -216,7 +216,8 @@ class ReadoutRidgeFit(Fitter):
             ``ridge`` attribute if it has one, else ``DEFAULT_ALPHAS``.
         scheme: finite-difference scheme for ``ẋ̂`` (see :data:`mnemode.data.FD_SCHEMES`).
         val_windows, val_horizon, gamma: the forecasts that choose among time-constant
-            ranges (unused when the closure has one range).
+            ranges (unused when the closure has one range; the horizon is shortened to what
+            the validation trajectories hold after the warm-up).
 
     ``fit`` returns ``train_error`` and ``val_error`` as relative RMS errors of the
     residual targets (:func:`mnemode.fitting.regression.relative_error`: 0 is
@@ -293,7 +294,8 @@ class ReadoutRidgeFit(Fitter):
         data = val if val is not None else train
         dt = data.dt
         n_warm = int(round(ctx.warm_up / dt)) if model.hidden_size else 0
-        n_after = max(1, int(round(self.val_horizon / dt)))
+        # as long as asked, or as the data allow after the warm-up (short trajectories still get a choice)
+        n_after = max(1, min(int(round(self.val_horizon / dt)), data.n_times - 1 - n_warm))
         starts = choose_starts(data.n_times, data.n_trajectories, n_warm, n_after, self.val_windows,
                                what="validation data", fix="shorten val_horizon or warm_up, or use longer "
                                "validation trajectories.")
