@@ -206,6 +206,36 @@ def test_rollout_leaving_envelope_is_reported_at_the_first_step(narrow):
     assert len(env_warnings) == 1 and f"step {first} " in str(env_warnings[0].message)
 
 
+class _Growth(torch.nn.Module):
+    """dx/dt = x: overflows float64 after about 710 time units."""
+
+    autonomous = True
+
+    def forward(self, t, x, u=None):
+        return x
+
+
+def test_blow_up_deep_in_a_rollout_is_reported_at_its_step(tmp_path):
+    # The rollout checks a chunk of steps at a time; the step it names must be the one a
+    # step-by-step loop finds (the reference here: Simulator.step called once per interval).
+    model = HybridField(_Growth(), None, 1).double()
+    export_simulator(model, tmp_path / "g", dt=1.0, solver=RK4(1.0), state_names=["a"], state_units=["m"],
+                     warm_up_steps=0, envelope={"a": [-1.0, 1.0]}, parity_steps=5, check_float32=False)
+    from mnemode.simulator import NonFiniteStateError
+
+    sim = load_simulator(tmp_path / "g", on_envelope="ignore")
+    s, first = torch.ones(1, 1, dtype=torch.float64), None
+    for k in range(1, 1000):
+        try:
+            s = sim.step(s)
+        except NonFiniteStateError:  # one step at a time: this step turned non-finite
+            first = k
+            break
+    assert first is not None and first > 64  # beyond the first chunk
+    with pytest.raises(NonFiniteStateError, match=f"rollout at step {first} "):
+        sim.rollout([1.0], 1000)
+
+
 # -- input checks ---------------------------------------------------------------------
 
 def test_shape_errors_name_argument_shape_and_components(memory, narrow):
