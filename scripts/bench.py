@@ -379,6 +379,7 @@ def bench_export(args, out: dict) -> None:
 
 def _truth_case(overrides, truth_step, horizon, batches, args):
     """The preset's main model (as the preset builds it: closure, Δt, solver step) against its truth."""
+    from mnemode.hybrid import simulate
     from mnemode.pipeline import build_model, compose_config, main_model_name, make_system, model_specs
     from mnemode.solvers import RK4
 
@@ -405,8 +406,8 @@ def _truth_case(overrides, truth_step, horizon, batches, args):
             sim_solver, truth_solver = RK4(sim_step, compile=comp), RK4(truth_step, compile=comp)
 
             def run_sim(s=sim_solver):
-                with torch.no_grad():
-                    return s.unroll(model, x0, 0.0, dt, n_sim)
+                with torch.no_grad():  # the user's path: simulate (the prepared field when eager)
+                    return simulate(model, x0, n_sim, dt, s)
 
             def run_truth(s=truth_solver):
                 with torch.no_grad():

@@ -14,15 +14,17 @@ fast path must change the cost, never the numbers (beyond rounding).
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 import pytest
 import torch
 from scipy.integrate import solve_ivp
 
-from mnemode.closures import RandomFeatureClosure, RecurrentClosure
+from mnemode.closures import PolynomialClosure, RandomFeatureClosure, RecurrentClosure, RingLocalClosure
 from mnemode.hybrid import AffineHybridField, HybridField, PreparedMemorylessField, warm_up
 from mnemode.solvers import RK4
-from mnemode.systems import thermosyphon
+from mnemode.systems import lorenz96, thermosyphon
 
 
 def _randomised_leaky(coupling: bool) -> RecurrentClosure:
@@ -49,19 +51,45 @@ def _random_features() -> RandomFeatureClosure:
 
 def _unroll_loss(field, s0, n=40):
     traj = RK4(0.02).unroll(field, s0, 0.0, 0.02, n)
-    return traj, (traj[..., :3] - 1.0).square().mean()
+    return traj, (traj[..., :3] - 1.0).square().mean() + 1e-3 * traj.square().mean()
+
+
+def _polynomial() -> PolynomialClosure:
+    c = PolynomialClosure(3, degree=3, dtype="float64")
+    g = torch.Generator().manual_seed(6)
+    with torch.no_grad():
+        c.readout.copy_(0.1 * torch.randn(c.readout.shape, generator=g, dtype=torch.float64))
+    c.scaling.set(in_mean=[0.5, -1.0, 40.0], in_std=[8.0, 9.0, 7.0], out_offset=[0.0, 3.0, 20.0],
+                  out_scale=[1.0, 4.0, 5.0])
+    return c
+
+
+def _ring_of_cubics() -> RingLocalClosure:
+    # as experiment=lorenz96_two_scale builds it: a cubic of five sites shared along a ring of 36
+    c = RingLocalClosure(36, functools.partial(PolynomialClosure, degree=3), neighbours=2, dtype="float64")
+    g = torch.Generator().manual_seed(7)
+    with torch.no_grad():
+        c.inner.readout.copy_(0.05 * torch.randn(c.inner.readout.shape, generator=g, dtype=torch.float64))
+    c.scaling.set(in_mean=[2.0] * 36, in_std=[3.5] * 36, out_offset=[-0.8] * 36, out_scale=[1.7] * 36)
+    return c
 
 
 @pytest.mark.parametrize("closure_maker, kind", [
     (lambda: _randomised_leaky(False), AffineHybridField),
     (lambda: _randomised_leaky(True), AffineHybridField),
     (_random_features, PreparedMemorylessField),
+    (_polynomial, PreparedMemorylessField),
+    (_ring_of_cubics, PreparedMemorylessField),
 ])
 def test_prepared_field_matches_plain_values_and_gradients(closure_maker, kind):
     closure = closure_maker()
-    model = HybridField(thermosyphon().nominal, closure, 3)
     g = torch.Generator().manual_seed(0)
-    x0 = torch.tensor([1.0, 2.0, 45.0], dtype=torch.float64) + torch.randn(6, 3, generator=g, dtype=torch.float64)
+    if closure.dim == 36:
+        model = HybridField(lorenz96(k=36, F=10.0).nominal, closure, 36)
+        x0 = 2.0 + 3.0 * torch.randn(6, 36, generator=g, dtype=torch.float64)
+    else:
+        model = HybridField(thermosyphon().nominal, closure, 3)
+        x0 = torch.tensor([1.0, 2.0, 45.0], dtype=torch.float64) + torch.randn(6, 3, generator=g, dtype=torch.float64)
     s0 = torch.cat((x0, torch.randn(6, model.hidden_size, generator=g, dtype=torch.float64)), -1)
     fast = model.prepared()
     assert isinstance(fast, kind)

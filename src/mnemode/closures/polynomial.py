@@ -75,6 +75,13 @@ def monomial_exponents(n_inputs: int, degree: int) -> list[tuple[int, ...]]:
             for e in itertools.combinations_with_replacement(range(int(n_inputs)), k)]
 
 
+def _flat(contract, in_dim: int, dim: int):
+    """``x (..., in_dim) ↦ (..., dim)`` from a contraction over rows ``(N, in_dim) ↦ (N, dim)``."""
+    def correction(x: torch.Tensor) -> torch.Tensor:
+        return contract(x.reshape(-1, in_dim)).reshape(*x.shape[:-1], dim)
+    return correction
+
+
 class PolynomialClosure(Closure, RegressionFittable):
     """Memoryless closure: a polynomial of total degree ≤ ``degree`` in the normalised inputs.
 
@@ -140,6 +147,49 @@ class PolynomialClosure(Closure, RegressionFittable):
         else:
             y = self._monomial_rows(flat).T @ coef                               # (N, dim)
         return self.scaling.outputs(y.reshape(*z.shape[:-1], self.dim))
+
+    def prepared_correction(self):
+        """The correction with its coefficient tensor built once and the output scaling folded in, or ``None``.
+
+        For the nested evaluation (small coefficient tensors) without forcing inputs;
+        equal to :meth:`correction` to rounding, built from the coefficients
+        (differentiable), valid until they change.
+        """
+        if not self.nested or self.forcing_dim or self.in_dim != self.dim:
+            return None
+        sc = self.scaling
+        if not sc.applied:
+            return _flat(self.folded_nested(None, None), self.in_dim, self.dim)
+        contract = self.folded_nested(sc.out_scale, sc.out_offset)
+        mean, std = sc.in_mean, sc.in_std
+        return _flat(lambda z: contract((z - mean) / std), self.in_dim, self.dim)
+
+    def folded_nested(self, out_scale: torch.Tensor | None, out_offset: torch.Tensor | None):
+        """``z (N, in_dim) ↦ out_offset + out_scale · y (N, dim)`` by the nested contraction, coefficients prepared once.
+
+        The output scaling is folded into the coefficient tensor (``out_offset`` into the
+        constant monomial's coefficient, the last of the dense tensor); ``None`` leaves
+        the output unscaled. Used by :meth:`prepared_correction` and by a ring closure
+        that shares this polynomial along its sites.
+        """
+        width, degree = self.in_dim + 1, self.degree
+        coef = self.readout
+        dense = coef.new_zeros((width ** degree, self.dim)).index_copy(0, self.dense_index, coef)
+        if out_scale is not None:
+            dense = dense * out_scale
+        if out_offset is not None:
+            dense = torch.cat((dense[:-1], dense[-1:] + out_offset))  # the constant monomial sits last
+        first = dense.view(width, -1).T                                          # (width^(d−1)·dim, width)
+
+        def contract(z: torch.Tensor) -> torch.Tensor:
+            n = z.shape[0]
+            w = torch.cat((z.T, z.new_ones((1, n))), dim=0)                       # (width, N)
+            acc = first @ w
+            for _ in range(degree - 1):
+                acc = (w.unsqueeze(1) * acc.view(width, -1, n)).sum(0)
+            return acc.T
+
+        return contract
 
     def _nested(self, z: torch.Tensor, coef: torch.Tensor) -> torch.Tensor:
         """``Σ_f C[f_1..f_d] Π_j w_{f_j}`` with ``w = [z, 1]``, one factor at a time (Horner's rule in several

@@ -113,6 +113,28 @@ class RingLocalClosure(Closure, RegressionFittable):
         local = self.inner.correction(self.neighbourhoods(self.scaling.inputs(x)))
         return self.scaling.outputs(local.squeeze(-1))
 
+    def prepared_correction(self):
+        """The correction with the inner polynomial's coefficients prepared once and the ring's pooled output
+        scaling folded into them, or ``None`` (another inner closure, or scalings that are not pooled).
+
+        Equal to :meth:`correction` to rounding; built from the coefficients
+        (differentiable), valid until they change.
+        """
+        folded = getattr(self.inner, "folded_nested", None)
+        sc = self.scaling
+        if folded is None or not getattr(self.inner, "nested", False) or not sc.applied:
+            return None
+        if not (bool((sc.out_scale == sc.out_scale[0]).all()) and bool((sc.out_offset == sc.out_offset[0]).all())):
+            return None
+        contract = folded(sc.out_scale[:1], sc.out_offset[:1])
+        mean, std, width = sc.in_mean, sc.in_std, 2 * self.neighbours + 1
+
+        def correction(x: torch.Tensor) -> torch.Tensor:
+            local = self.neighbourhoods((x - mean) / std)                           # (..., K, width)
+            return contract(local.reshape(-1, width)).reshape(x.shape)
+
+        return correction
+
     def fit_regression(self, inputs: torch.Tensor, targets: torch.Tensor, generator: torch.Generator | None = None,
                        val_inputs: torch.Tensor | None = None, val_targets: torch.Tensor | None = None,
                        progress: bool = False, log=None) -> dict:
