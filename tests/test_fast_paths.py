@@ -21,8 +21,9 @@ import pytest
 import torch
 from scipy.integrate import solve_ivp
 
-from mnemode.closures import PolynomialClosure, RandomFeatureClosure, RecurrentClosure, RingLocalClosure
-from mnemode.hybrid import AffineHybridField, HybridField, PreparedMemorylessField, warm_up
+from mnemode.closures import (PolynomialClosure, RandomFeatureClosure, RecurrentClosure, ReservoirClosure,
+                              RingLocalClosure)
+from mnemode.hybrid import AffineHybridField, HybridField, PreparedMemoryField, PreparedMemorylessField, warm_up
 from mnemode.solvers import RK4
 from mnemode.systems import lorenz96, thermosyphon
 
@@ -74,8 +75,21 @@ def _ring_of_cubics() -> RingLocalClosure:
     return c
 
 
+def _reservoir(kind: str, quadratic: bool) -> ReservoirClosure:
+    c = ReservoirClosure(3, hidden_size=12, kind=kind, quadratic=quadratic, time_constants=(0.2, 3.0),
+                         bias_scale=0.3, seed=8, dtype="float64")
+    g = torch.Generator().manual_seed(9)
+    with torch.no_grad():
+        c.readout_weight.copy_(0.1 * torch.randn(c.readout_weight.shape, generator=g, dtype=torch.float64))
+    c.scaling.set(in_mean=[0.5, -1.0, 40.0], in_std=[8.0, 9.0, 7.0], out_offset=[0.0, 3.0, 20.0],
+                  out_scale=[1.0, 4.0, 5.0])
+    return c
+
+
 @pytest.mark.parametrize("closure_maker, kind", [
     (lambda: _randomised_leaky(False), AffineHybridField),
+    (lambda: _reservoir("filter_bank", True), PreparedMemoryField),
+    (lambda: _reservoir("random", False), PreparedMemoryField),
     (lambda: _randomised_leaky(True), AffineHybridField),
     (_random_features, PreparedMemorylessField),
     (_polynomial, PreparedMemorylessField),
@@ -164,3 +178,15 @@ def test_exact_warm_up_is_refused_where_there_is_none():
     with pytest.raises(ConfigError, match="exact"):
         warm_up(model, history, 0.02, RK4(0.02), exact=True)
     assert warm_up(model, history, 0.02, RK4(0.02)).shape == (2, 4)  # the solver steps it
+
+
+def test_prepared_data_only_field_matches_plain():
+    # no physics: the prepared field is the closure's rates alone (the demo's data_only model)
+    for closure in (_reservoir("filter_bank", True), _randomised_leaky(False)):
+        model = HybridField(None, closure, 3)
+        g = torch.Generator().manual_seed(3)
+        s = torch.cat((torch.tensor([1.0, 2.0, 45.0], dtype=torch.float64) + torch.randn(5, 3, generator=g,
+                                                                                          dtype=torch.float64),
+                       torch.randn(5, closure.hidden_size, generator=g, dtype=torch.float64)), -1)
+        with torch.no_grad():
+            torch.testing.assert_close(model.prepared()(0.0, s), model(0.0, s), rtol=1e-13, atol=1e-12)

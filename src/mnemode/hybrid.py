@@ -38,7 +38,8 @@ from .closures.base import Closure, DiscreteRecurrent, Recurrent
 from .errors import ConfigError
 from .solvers import FlowMap, Solver
 
-__all__ = ["HybridField", "AffineHybridField", "PreparedMemorylessField", "HybridFlowMap", "Forcing", "Driven",
+__all__ = ["HybridField", "AffineHybridField", "PreparedMemoryField", "PreparedMemorylessField", "HybridFlowMap",
+           "Forcing", "Driven",
            "drive", "physics_time", "reads_time", "simulate", "warm_up"]
 
 
@@ -138,6 +139,10 @@ class HybridField(nn.Module):
             correction = self.closure.prepared_correction()
             if correction is not None:
                 return PreparedMemorylessField(self.physics, correction, self.dim)
+        else:
+            rates = self.closure.prepared_rates()
+            if rates is not None:
+                return PreparedMemoryField(self.physics, rates, self.dim, self.hidden_size)
         return self
 
     def split(self, state: torch.Tensor):
@@ -177,6 +182,21 @@ class AffineHybridField:
         x = state[..., : self.dim]
         dx = self.physics(t, x, u) if u is not None else self.physics(t, x)
         return lin + torch.nn.functional.pad(dx, (0, self.hidden_size))
+
+
+class PreparedMemoryField:
+    """``d[x, r]/dt = [f0(t, x[, u]), 0] + g(s)`` with ``g`` a memory closure's prepared rates ``s ↦ [m, dr/dt]``."""
+
+    def __init__(self, physics, rates: Callable, dim: int, hidden_size: int):
+        self.physics, self.rates, self.dim, self.hidden_size = physics, rates, int(dim), int(hidden_size)
+
+    def __call__(self, t, state: torch.Tensor, u: torch.Tensor | None = None) -> torch.Tensor:
+        out = self.rates(state)
+        if self.physics is None:
+            return out
+        x = state[..., : self.dim]
+        dx = self.physics(t, x, u) if u is not None else self.physics(t, x)
+        return out + torch.nn.functional.pad(dx, (0, self.hidden_size))
 
 
 class PreparedMemorylessField:

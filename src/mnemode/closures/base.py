@@ -167,6 +167,15 @@ class Closure(nn.Module, metaclass=ABCMeta):
         """
         return None
 
+    def prepared_rates(self):
+        """A memory closure's ``s = [x, r] ↦ [m, dr/dt]`` with its constants folded once, or ``None``.
+
+        For memory closures that are not affine in the state (:meth:`affine_rates`
+        covers those); same contract: built from the parameters, valid until they
+        change, equal to :meth:`correction` and :meth:`hidden_field` to rounding.
+        """
+        return None
+
     def prepared_correction(self):
         """A memoryless closure's correction ``x ↦ m(x)`` with its constants folded once, or ``None``.
 

@@ -156,6 +156,50 @@ class _Reservoir(Memory, LinearReadout):
         parts.append(torch.ones((*base.shape[:-1], 1), dtype=base.dtype, device=base.device))
         return torch.cat(parts, dim=-1)
 
+    def prepared_rates(self):
+        """``[x, r] ↦ [m, dr/dt]`` with the scalings, rates and readout folded once (continuous, unforced), else ``None``.
+
+        The scaled inputs and the hidden state ``[x̃, r]`` are one elementwise affine map
+        of the state; the filter bank's field is then one matrix product, the random
+        reservoir's one matrix product and a tanh, and the readout (pairwise products
+        included) two matrix products with the output scaling folded into them.
+        """
+        if self.discrete or self.forcing_dim or not self.scaling.applied:
+            return None
+        sc, n_in, H = self.scaling, self.in_dim, self.hidden_size
+        dtype = self.readout_weight.dtype
+        ones = torch.ones(H, dtype=dtype, device=sc.in_std.device)
+        gain = torch.cat((1.0 / sc.in_std, ones))                        # [x̃, r] = s ⊙ gain + shift
+        shift = torch.cat((-sc.in_mean / sc.in_std, torch.zeros_like(ones)))
+        inv_tau = self.inv_tau.to(dtype)
+        if self.kind == "filter_bank":
+            # dr = ([x̃, r] P) with P picking input k mod n_in for state k, minus r, all times 1/τ
+            P = torch.zeros(n_in + H, H, dtype=dtype, device=gain.device)
+            P[self.input_index, torch.arange(H)] = inv_tau
+            P[n_in + torch.arange(H), torch.arange(H)] = -inv_tau
+            drive = None
+        else:
+            P = torch.cat((self.U.T, self.W.T)).to(dtype)
+            drive = self.bias.to(dtype)
+        W = self.readout_weight * sc.out_scale                            # readout with the output scale folded
+        n = n_in + H
+        w_base, w_last = W[:n], sc.out_offset + W[-1]
+        w_quad = W[n:-1] if self.quadratic else None
+        i, j = torch.triu_indices(n, n, device=gain.device) if self.quadratic else (None, None)
+
+        def rates(state: torch.Tensor) -> torch.Tensor:
+            base = torch.addcmul(shift, state, gain)                     # [x̃, r]
+            if drive is None:
+                dr = base @ P
+            else:
+                dr = (torch.tanh(base @ P + drive) - base[..., n_in:]) * inv_tau
+            m = base @ w_base + w_last
+            if w_quad is not None:
+                m = m + (base[..., i] * base[..., j]) @ w_quad
+            return torch.cat((m, dr), dim=-1)
+
+        return rates
+
     def set_readout(self, weight: torch.Tensor) -> None:
         """Set the readout from ridge weights ``(n_features, dim)`` (normalised output units)."""
         with torch.no_grad():
