@@ -190,3 +190,19 @@ def test_prepared_data_only_field_matches_plain():
                        torch.randn(5, closure.hidden_size, generator=g, dtype=torch.float64)), -1)
         with torch.no_grad():
             torch.testing.assert_close(model.prepared()(0.0, s), model(0.0, s), rtol=1e-13, atol=1e-12)
+
+
+@pytest.mark.parametrize("closure_maker", [
+    lambda: _randomised_leaky(False), lambda: _reservoir("filter_bank", True), _random_features, _polynomial,
+])
+def test_exported_step_holds_folded_constants_of_their_own(closure_maker):
+    # The step program captures the folded form; each folded tensor must be saved whole, not as a view
+    # into another's storage (torch.export's writer cannot store partial views faithfully and warns).
+    from mnemode.export.programs import StepProgram, capture
+
+    model = HybridField(thermosyphon().nominal, closure_maker(), 3).eval().requires_grad_(False)
+    state = torch.zeros(2, 3 + model.hidden_size, dtype=torch.float64)
+    ep = capture(StepProgram(model, RK4(0.02), 0.02), (state,), "test model")
+    for name, t in list(ep.constants.items()) + list(ep.state_dict.items()):
+        if isinstance(t, torch.Tensor):  # (a buffer also captured as a constant shares its whole storage: fine)
+            assert t.numel() * t.element_size() == t.untyped_storage().nbytes(), f"{name} is a view into another"

@@ -179,7 +179,7 @@ class PolynomialClosure(Closure, RegressionFittable):
             dense = dense * out_scale
         if out_offset is not None:
             dense = torch.cat((dense[:-1], dense[-1:] + out_offset))  # the constant monomial sits last
-        first = dense.view(width, -1).T                                          # (width^(d−1)·dim, width)
+        first = dense.view(width, -1).T.contiguous()                             # (width^(d−1)·dim, width)
 
         def contract(z: torch.Tensor) -> torch.Tensor:
             n = z.shape[0]

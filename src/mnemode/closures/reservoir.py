@@ -183,9 +183,10 @@ class _Reservoir(Memory, LinearReadout):
             drive = self.bias.to(dtype)
         W = self.readout_weight * sc.out_scale                            # readout with the output scale folded
         n = n_in + H
-        w_base, w_last = W[:n], sc.out_offset + W[-1]
-        w_quad = W[n:-1] if self.quadratic else None
-        i, j = torch.triu_indices(n, n, device=gain.device) if self.quadratic else (None, None)
+        # own tensors, not views of W: an exported program stores each as a constant of its own
+        w_base, w_last = W[:n].clone(), sc.out_offset + W[-1]
+        w_quad = W[n:-1].clone() if self.quadratic else None
+        i, j = (t.clone() for t in torch.triu_indices(n, n, device=gain.device)) if self.quadratic else (None, None)
 
         def rates(state: torch.Tensor) -> torch.Tensor:
             base = torch.addcmul(shift, state, gain)                     # [x̃, r]
