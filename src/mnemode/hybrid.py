@@ -185,7 +185,7 @@ class AffineHybridField:
 
 
 class PreparedMemoryField:
-    """``d[x, r]/dt = [f0(t, x[, u]), 0] + g(s)`` with ``g`` a memory closure's prepared rates ``s ↦ [m, dr/dt]``."""
+    """``d[x, r]/dt = [f0(t, x[, u]), 0] + g(s)``, ``g`` a memory closure's prepared rates ``s ↦ [m, dr/dt]``."""
 
     def __init__(self, physics, rates: Callable, dim: int, hidden_size: int):
         self.physics, self.rates, self.dim, self.hidden_size = physics, rates, int(dim), int(hidden_size)

@@ -36,8 +36,8 @@ from ..errors import ConfigError
 from ..hybrid import Driven, HybridField, HybridFlowMap, reads_time, warm_up
 from ..solvers import Solver
 
-__all__ = ["PROGRAM_KINDS", "program_kind", "IntervalForcing", "StepProgram", "BlockProgram", "WarmUpInterval", "Program", "capture",
-           "program_bytes", "reload"]
+__all__ = ["PROGRAM_KINDS", "program_kind", "IntervalForcing", "StepProgram", "BlockProgram", "WarmUpInterval",
+           "Program", "capture", "program_bytes", "reload"]
 
 
 PROGRAM_KINDS = ("autonomous", "timed", "forced")
