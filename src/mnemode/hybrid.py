@@ -200,7 +200,7 @@ class PreparedMemoryField:
 
 
 class PreparedMemorylessField:
-    """``dx/dt = f0(t, x[, u]) + m(x)`` with ``m`` a closure's prepared correction (see :meth:`HybridField.prepared`)."""
+    """``dx/dt = f0(t, x[, u]) + m(x)``, ``m`` a closure's prepared correction (:meth:`HybridField.prepared`)."""
 
     hidden_size = 0
 
