@@ -28,6 +28,20 @@ from mnemode.solvers import RK4
 from mnemode.systems import lorenz96, thermosyphon
 
 
+def _demo_scaling(c):
+    """Input and output scalings of the demo's size (means, spreads and offsets far from 0 and 1)."""
+    c.scaling.set(in_mean=[0.5, -1.0, 40.0], in_std=[8.0, 9.0, 7.0], out_offset=[0.0, 3.0, 20.0],
+                  out_scale=[1.0, 4.0, 5.0])
+    return c
+
+
+def _fill_random(param: torch.Tensor, seed: int, scale: float) -> None:
+    """Overwrite ``param`` with ``scale`` × standard normal draws from its own seed."""
+    g = torch.Generator().manual_seed(seed)
+    with torch.no_grad():
+        param.copy_(scale * torch.randn(param.shape, generator=g, dtype=torch.float64))
+
+
 def _randomised_leaky(coupling: bool) -> RecurrentClosure:
     c = RecurrentClosure(3, hidden_size=9, form="leaky", coupling=coupling, input_init="filter_bank",
                          time_constants=(0.2, 3.0), seed=1, dtype="float64")
@@ -35,19 +49,13 @@ def _randomised_leaky(coupling: bool) -> RecurrentClosure:
     with torch.no_grad():
         for p in c.parameters():
             p.add_(0.1 * torch.randn(p.shape, generator=g, dtype=p.dtype))
-    c.scaling.set(in_mean=[0.5, -1.0, 40.0], in_std=[8.0, 9.0, 7.0], out_offset=[0.0, 3.0, 20.0],
-                  out_scale=[1.0, 4.0, 5.0])
-    return c
+    return _demo_scaling(c)
 
 
 def _random_features() -> RandomFeatureClosure:
     c = RandomFeatureClosure(3, n_features=40, lengthscale=1.5, seed=4, dtype="float64")
-    g = torch.Generator().manual_seed(5)
-    with torch.no_grad():
-        c.readout.copy_(torch.randn(c.readout.shape, generator=g, dtype=torch.float64))
-    c.scaling.set(in_mean=[0.5, -1.0, 40.0], in_std=[8.0, 9.0, 7.0], out_offset=[0.0, 3.0, 20.0],
-                  out_scale=[1.0, 4.0, 5.0])
-    return c
+    _fill_random(c.readout, seed=5, scale=1.0)
+    return _demo_scaling(c)
 
 
 def _unroll_loss(field, s0, n=40):
@@ -57,20 +65,14 @@ def _unroll_loss(field, s0, n=40):
 
 def _polynomial() -> PolynomialClosure:
     c = PolynomialClosure(3, degree=3, dtype="float64")
-    g = torch.Generator().manual_seed(6)
-    with torch.no_grad():
-        c.readout.copy_(0.1 * torch.randn(c.readout.shape, generator=g, dtype=torch.float64))
-    c.scaling.set(in_mean=[0.5, -1.0, 40.0], in_std=[8.0, 9.0, 7.0], out_offset=[0.0, 3.0, 20.0],
-                  out_scale=[1.0, 4.0, 5.0])
-    return c
+    _fill_random(c.readout, seed=6, scale=0.1)
+    return _demo_scaling(c)
 
 
 def _ring_of_cubics() -> RingLocalClosure:
     # as experiment=lorenz96_two_scale builds it: a cubic of five sites shared along a ring of 36
     c = RingLocalClosure(36, functools.partial(PolynomialClosure, degree=3), neighbours=2, dtype="float64")
-    g = torch.Generator().manual_seed(7)
-    with torch.no_grad():
-        c.inner.readout.copy_(0.05 * torch.randn(c.inner.readout.shape, generator=g, dtype=torch.float64))
+    _fill_random(c.inner.readout, seed=7, scale=0.05)
     c.scaling.set(in_mean=[2.0] * 36, in_std=[3.5] * 36, out_offset=[-0.8] * 36, out_scale=[1.7] * 36)
     return c
 
@@ -78,12 +80,8 @@ def _ring_of_cubics() -> RingLocalClosure:
 def _reservoir(kind: str, quadratic: bool) -> ReservoirClosure:
     c = ReservoirClosure(3, hidden_size=12, kind=kind, quadratic=quadratic, time_constants=(0.2, 3.0),
                          bias_scale=0.3, seed=8, dtype="float64")
-    g = torch.Generator().manual_seed(9)
-    with torch.no_grad():
-        c.readout_weight.copy_(0.1 * torch.randn(c.readout_weight.shape, generator=g, dtype=torch.float64))
-    c.scaling.set(in_mean=[0.5, -1.0, 40.0], in_std=[8.0, 9.0, 7.0], out_offset=[0.0, 3.0, 20.0],
-                  out_scale=[1.0, 4.0, 5.0])
-    return c
+    _fill_random(c.readout_weight, seed=9, scale=0.1)
+    return _demo_scaling(c)
 
 
 @pytest.mark.parametrize("closure_maker, kind", [

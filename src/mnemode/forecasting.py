@@ -45,6 +45,10 @@ class Starts:
     def __len__(self) -> int:
         return int(self.trajectory.size)
 
+    def windows(self, states: np.ndarray, n_after: int) -> np.ndarray:
+        """The observed states from each start on: ``(n_after + 1, len(self), D)`` of ``states (T, B, D)``."""
+        return np.stack([states[s: s + n_after + 1, b] for b, s in zip(self.trajectory, self.index)], axis=1)
+
     def subset(self, k: int) -> "Starts":
         """``k`` of these starts, evenly spread over them."""
         k = max(1, min(int(k), len(self)))

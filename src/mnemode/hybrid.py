@@ -163,27 +163,6 @@ class HybridField(nn.Module):
         return torch.cat((dx, self.closure.hidden_field(x, r, u)), dim=-1)
 
 
-class AffineHybridField:
-    """``d[x, r]/dt = [f0(t, x[, u]), 0] + [x, r] @ M + v``: a hybrid field whose closure is affine in the state.
-
-    Made by :meth:`HybridField.prepared` for one unroll; it evaluates the same
-    field as the :class:`HybridField` it came from (to rounding) with a few
-    tensor operations per stage instead of dozens.
-    """
-
-    def __init__(self, physics, M: torch.Tensor, v: torch.Tensor, dim: int):
-        self.physics, self.M, self.v, self.dim = physics, M, v, int(dim)
-        self.hidden_size = M.shape[0] - self.dim
-
-    def __call__(self, t, state: torch.Tensor, u: torch.Tensor | None = None) -> torch.Tensor:
-        lin = state @ self.M + self.v if state.dim() != 2 else torch.addmm(self.v, state, self.M)
-        if self.physics is None:
-            return lin
-        x = state[..., : self.dim]
-        dx = self.physics(t, x, u) if u is not None else self.physics(t, x)
-        return lin + torch.nn.functional.pad(dx, (0, self.hidden_size))
-
-
 class PreparedMemoryField:
     """``d[x, r]/dt = [f0(t, x[, u]), 0] + g(s)``, ``g`` a memory closure's prepared rates ``s ↦ [m, dr/dt]``."""
 
@@ -197,6 +176,22 @@ class PreparedMemoryField:
         x = state[..., : self.dim]
         dx = self.physics(t, x, u) if u is not None else self.physics(t, x)
         return out + torch.nn.functional.pad(dx, (0, self.hidden_size))
+
+
+class AffineHybridField(PreparedMemoryField):
+    """``d[x, r]/dt = [f0(t, x[, u]), 0] + [x, r] @ M + v``: a hybrid field whose closure is affine in the state.
+
+    Made by :meth:`HybridField.prepared` for one unroll; it evaluates the same
+    field as the :class:`HybridField` it came from (to rounding) with a few
+    tensor operations per stage instead of dozens.
+    """
+
+    def __init__(self, physics, M: torch.Tensor, v: torch.Tensor, dim: int):
+        super().__init__(physics, self._affine, dim, M.shape[0] - int(dim))
+        self.M, self.v = M, v
+
+    def _affine(self, state: torch.Tensor) -> torch.Tensor:
+        return torch.addmm(self.v, state, self.M) if state.dim() == 2 else state @ self.M + self.v
 
 
 class PreparedMemorylessField:

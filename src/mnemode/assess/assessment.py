@@ -217,7 +217,7 @@ def _plan(models: dict, test: TrajectorySet, system: System, settings: AssessSet
     if len(starts) < settings.n_starts:
         notes.append(f"Only {len(starts)} distinct forecast starts fit in the test set "
                      f"({settings.n_starts} requested).")
-    truth = np.stack([test.states[s: s + n_h + 1, b] for b, s in zip(starts.trajectory, starts.index)], axis=1)
+    truth = starts.windows(test.states, n_h)
     free = _free_runs(test, starts, settings, n_warm, notes)
     seg = min(test.n_times, free.n_statistics + 1)
     n_lag = _steps(settings.acf_max_lag, dt)

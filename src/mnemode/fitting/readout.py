@@ -255,21 +255,23 @@ class ReadoutRidgeFit(Fitter):
         targets = residual_targets(model, train, self.scheme)
         _, inputs, rho = targets
         set_scaling(closure, inputs.reshape(-1, inputs.shape[-1]), rho.reshape(-1, rho.shape[-1]))
+        val_targets = None if val is None else residual_targets(model, val, self.scheme)
         candidates = list(getattr(closure, "time_constant_candidates", None) or [])
         if len(candidates) < 2:
-            out = self._fit_readout(model, train, val, ctx, targets)
+            out = self._fit_readout(model, train, val, ctx, targets, val_targets)
         else:
-            out = self._choose_time_constants(model, candidates, train, val, ctx, targets)
+            out = self._choose_time_constants(model, candidates, train, val, ctx, targets, val_targets)
         out["fit_seconds"] = time.perf_counter() - t0
         return out
 
-    def _fit_readout(self, model, train, val, ctx, targets) -> dict:
+    def _fit_readout(self, model, train, val, ctx, targets, val_targets) -> dict:
         """Ridge readouts for each penalty; the best on validation data is set. Returns the errors."""
         closure = model.closure
         dtype = model_dtype(model)
         discard = int(round(ctx.warm_up / train.dt)) if model.hidden_size else 0
         fit_eq = _normal_equations(model, train, ctx.solver, self.scheme, discard, dtype, targets)
-        val_eq = None if val is None else _normal_equations(model, val, ctx.solver, self.scheme, discard, dtype)
+        val_eq = None if val is None else _normal_equations(model, val, ctx.solver, self.scheme, discard, dtype,
+                                                             val_targets)
         out_scale = closure.scaling.out_scale
         best = None
         for alpha in self._alphas(closure):
@@ -288,7 +290,7 @@ class ReadoutRidgeFit(Fitter):
         closure.set_readout(w)
         return {"train_error": train_err, "val_error": val_err, "ridge": alpha, "n_samples": int(fit_eq.n)}
 
-    def _choose_time_constants(self, model, candidates, train, val, ctx, targets) -> dict:
+    def _choose_time_constants(self, model, candidates, train, val, ctx, targets, val_targets) -> dict:
         """A readout per time-constant range; the range whose validation forecasts last longest is kept."""
         closure = model.closure
         data = val if val is not None else train
@@ -299,16 +301,15 @@ class ReadoutRidgeFit(Fitter):
         starts = choose_starts(data.n_times, data.n_trajectories, n_warm, n_after, self.val_windows,
                                what="validation data", fix="shorten val_horizon or warm_up, or use longer "
                                "validation trajectories.")
-        truth = np.stack([data.states[s: s + n_after + 1, b] for b, s in zip(starts.trajectory, starts.index)], 1)
+        truth = starts.windows(data.states, n_after)
         scale, times = rms_scale(data.states), data.absolute_times()
         best, scores = None, {}
         for bounds in candidates:
             closure.set_time_constants(bounds)
-            out = self._fit_readout(model, train, val, ctx, targets)
+            out = self._fit_readout(model, train, val, ctx, targets, val_targets)
             fc = run_forecasts(model, ctx.solver, data.states, starts, n_warm, n_after, dt, data.forcing,
                                times=times)
-            valid, _ = validity_times(np.where(np.isfinite(fc.states), fc.states, np.inf), truth, dt, self.gamma,
-                                      scale)
+            valid, _ = validity_times(fc.states, truth, dt, self.gamma, scale)  # non-finite: invalid at once
             score = (float(np.median(valid)), float(np.mean(valid)))
             scores[f"{bounds[0]:g}-{bounds[1]:g}"] = score[0]
             if best is None or score > best[0]:
